@@ -1,0 +1,81 @@
+"""Board serials as typed or scanned, and their folder-safe form.
+
+A serial comes from an operator's keyboard or a barcode scanner (which types the code
+and an Enter, sometimes with framing control characters around it). It is data, never
+a path: the run folder gets :func:`folder_safe` of it, while the index keeps the serial
+as read (:func:`clean_serial`).
+"""
+
+from __future__ import annotations
+
+import re
+import unicodedata
+
+from loopwright.errors import InputError
+
+#: Longest serial accepted, in characters (a longer line is a misread or a pasted text).
+MAX_SERIAL_CHARS = 128
+#: Longest folder-safe part, in characters (run-folder contract).
+MAX_FOLDER_PART_CHARS = 64
+
+_UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
+
+
+def clean_serial(line: str) -> str:
+    """The serial in one input line: surrounding whitespace and control characters removed.
+
+    Control characters (Unicode category ``Cc``: NUL, ESC, STX/ETX, CR, LF, ...) are
+    removed wherever they are: they cannot be printed on a label, and scanners add them
+    as framing. Everything else is kept as read, so the index stores what was scanned.
+
+    Parameters
+    ----------
+    line
+        One line from the operator's terminal or a scanner.
+
+    Returns
+    -------
+    str
+        The serial, possibly empty (an empty line ends a batch).
+
+    Raises
+    ------
+    InputError
+        If the serial is longer than :data:`MAX_SERIAL_CHARS`.
+    """
+    kept = "".join(ch for ch in line if unicodedata.category(ch) != "Cc")
+    serial = kept.strip()
+    if len(serial) > MAX_SERIAL_CHARS:
+        raise InputError(
+            f"serial is {len(serial)} characters long; at most {MAX_SERIAL_CHARS} are "
+            "accepted (was a whole text pasted or two labels scanned?)",
+            field="serial",
+        )
+    return serial
+
+
+def folder_safe(text: str, max_chars: int = MAX_FOLDER_PART_CHARS) -> str:
+    """A form of ``text`` that can be one part of a folder name on any file system.
+
+    Compatibility forms are folded first (NFKC: full-width digits become digits), then
+    every character outside ``[A-Za-z0-9._-]`` becomes ``_``, a leading ``.`` becomes
+    ``_`` (no hidden folders, no ``..``) and the result is cut to ``max_chars``.
+    Path separators therefore never survive, so the result cannot leave its parent.
+
+    Parameters
+    ----------
+    text
+        Any string, e.g. a board serial.
+    max_chars
+        Longest result.
+
+    Returns
+    -------
+    str
+        A non-empty name (``_`` for an empty input).
+    """
+    folded = unicodedata.normalize("NFKC", text)
+    safe = _UNSAFE.sub("_", folded)
+    if safe.startswith("."):
+        safe = "_" + safe[1:]
+    return safe[:max_chars] or "_"
