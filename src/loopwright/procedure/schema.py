@@ -56,14 +56,14 @@ MAX_ANY_FREQUENCY_HZ = 1e12
 MAX_NAME_CHARS = 200
 MAX_TEXT_CHARS = 4000
 
-#: Loop figures a limit may test, with their unit. The runner looks each one up in the
-#: analysis (``LoopFigures.to_dict()``) or, for ``closed_loop_*``, in the closed-loop
-#: results of the run.
+#: Loop figures a limit may test, with their unit. :func:`figure_value` finds each in
+#: the analysis (``LoopFigures.to_dict()``) or, for ``closed_loop_*``, in the run's
+#: closed-loop results.
 FIGURES: dict[str, str] = {
     "phase_margin_deg": "deg",
     "gain_margin_db": "dB",
     "crossover_frequency_hz": "Hz",
-    "phase_crossover_frequency_hz": "Hz",
+    "gain_margin_frequency_hz": "Hz",
     "oscillation_frequency_hz": "Hz",
     "excess_gain": "",
     "resonance_frequency_hz": "Hz",
@@ -80,7 +80,7 @@ Figure = Literal[
     "phase_margin_deg",
     "gain_margin_db",
     "crossover_frequency_hz",
-    "phase_crossover_frequency_hz",
+    "gain_margin_frequency_hz",
     "oscillation_frequency_hz",
     "excess_gain",
     "resonance_frequency_hz",
@@ -269,6 +269,91 @@ class Limit(_Model):
     def display_unit(self) -> str:
         """The unit given, or the figure's own unit."""
         return self.unit if self.unit is not None else FIGURES[self.figure]
+
+    def evaluate(self, value: float | None) -> dict[str, Any]:
+        """This limit against a value: the ``limits`` entry of summary.json.
+
+        ``passed`` is False when the value is missing (a figure that was not reached
+        fails its limit); ``margin`` is the distance to the nearer bound, positive
+        inside, None without a value.
+        """
+        passed = False
+        margin: float | None = None
+        if value is not None and math.isfinite(value):
+            distances = []
+            if self.min is not None:
+                distances.append(value - self.min)
+            if self.max is not None:
+                distances.append(self.max - value)
+            margin = float(min(distances))
+            passed = margin >= 0
+        return {"name": self.name, "figure": self.figure, "min": self.min, "max": self.max,
+                "unit": self.display_unit, "value": value, "passed": passed,
+                "margin": margin}
+
+
+_FROM_ANALYSIS = {
+    "phase_margin_deg": "phase_margin_deg",
+    "gain_margin_db": "gain_margin_db",
+    "crossover_frequency_hz": "phase_margin_frequency_hz",
+    "gain_margin_frequency_hz": "gain_margin_frequency_hz",
+    "oscillation_frequency_hz": "oscillation_frequency_hz",
+    "excess_gain": "excess_gain",
+    "bandwidth_hz": "bandwidth_hz",
+}
+_FROM_RESONANCE = {"resonance_frequency_hz": "frequency_hz", "resonance_peak_db": "peak_db",
+                   "resonance_q": "q"}
+_FROM_CLOSED_LOOP = {"closed_loop_frequency_hz": "frequency_hz",
+                     "closed_loop_amplitude_v": "amplitude_v",
+                     "closed_loop_thd_pct": "thd_pct",
+                     "closed_loop_frequency_error_pct": "frequency_error_pct"}
+
+
+def figure_value(figure: str, analysis: dict[str, Any] | None,
+                 closed_loop: dict[str, Any] | None = None) -> float | None:
+    """The value of one figure of :data:`FIGURES` from a run's results, or None.
+
+    Parameters
+    ----------
+    figure
+        A key of :data:`FIGURES`.
+    analysis
+        ``LoopFigures.to_dict()``; ``crossover_frequency_hz`` is its
+        ``phase_margin_frequency_hz`` (the worst crossover), ``resonance_*`` the
+        highest peak of ``resonances``.
+    closed_loop
+        The ``closed_loop`` part of summary.json (``frequency_hz``, ``amplitude_v``,
+        ``thd_pct``, ``frequency_error_pct``).
+    """
+    if figure not in FIGURES:
+        raise InputError(f"unknown figure {figure!r}; one of {', '.join(FIGURES)}")
+    value: Any = None
+    if figure in _FROM_ANALYSIS and analysis:
+        value = analysis.get(_FROM_ANALYSIS[figure])
+    elif figure in _FROM_RESONANCE and analysis and analysis.get("resonances"):
+        peak = max(analysis["resonances"], key=lambda r: r.get("peak_db", -math.inf))
+        value = peak.get(_FROM_RESONANCE[figure])
+    elif figure in _FROM_CLOSED_LOOP and closed_loop:
+        value = closed_loop.get(_FROM_CLOSED_LOOP[figure])
+    if value is None or isinstance(value, bool):
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def evaluate_limits(limits: list[Limit], analysis: dict[str, Any] | None,
+                    closed_loop: dict[str, Any] | None = None
+                    ) -> tuple[list[dict[str, Any]], str]:
+    """Every limit against the results: (summary ``limits`` entries, verdict).
+
+    The verdict is ``"pass"`` when every limit passed, ``"fail"`` when one did not,
+    ``"none"`` without limits.
+    """
+    entries = [limit.evaluate(figure_value(limit.figure, analysis, closed_loop))
+               for limit in limits]
+    if not entries:
+        return entries, "none"
+    return entries, "pass" if all(e["passed"] for e in entries) else "fail"
 
 
 # --------------------------------------------------------------------------- steps
