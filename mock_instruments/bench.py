@@ -1,0 +1,389 @@
+"""The physics of the simulated bench: generator -> DUT -> two scope channels.
+
+One :class:`SimulatedBench` is shared by the simulated generator, scope and loop switch
+(their SCPI front ends live in :mod:`mock_instruments.instruments`). It keeps the
+generator's state, the two scope channels' vertical settings and the loop switch, and
+computes each acquisition from them:
+
+1. the DUT's steady response to the generator's sine (each channel through its own
+   rational transfer function, state-space realised), channel 2 optionally delayed and
+   distorted by the DUT's soft saturation (harmonics through the DUT's network);
+2. the settling transient since the last generator change: the realisation's state is
+   continuous across the change, and the difference to the new steady state decays with
+   ``exp(A t)``, i.e. with the DUT's own poles, evaluated at the bench clock;
+3. with the loop closed, the loop's own time integration instead (see
+   :mod:`mock_instruments.oscillate`);
+4. then the scope: AC coupling, DC offsets, white noise, scope clock offset, trigger
+   jitter, channel skew, quantisation over the screen and clipping at its edges
+   (:mod:`mock_instruments.signal_chain`).
+
+The bench clock is injectable (tests advance a fake clock; the default is
+``time.monotonic``), so settling behaves deterministically in tests.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field, fields, replace
+
+import numpy as np
+import scipy.linalg
+
+from loopwright.errors import InputError
+from mock_instruments import signal_chain
+from mock_instruments.duts import DUTModel, load_dut
+from mock_instruments.lti import StateSpace
+from mock_instruments.oscillate import ClosedLoopRun
+
+#: Harmonics of the soft saturation carried through the DUT's network.
+HARMONICS = 9
+#: Points per period used to find the saturation's harmonics.
+_HARMONIC_POINTS = 64
+#: Generator changes kept for channels read with a delay.
+_KEPT_SEGMENTS = 4
+
+
+@dataclass
+class GeneratorState:
+    """What the simulated generator is doing."""
+
+    frequency_hz: float = 1000.0
+    amplitude_vpp: float = 0.1
+    offset_v: float = 0.0
+    output_on: bool = False
+    shape: str = "sine"
+
+
+@dataclass
+class ScopeChannelState:
+    """One scope channel's vertical settings."""
+
+    scale_v_per_div: float = 1.0
+    offset_v: float = 0.0        # volts at screen centre; the ADC spans offset +- 4 div
+    coupling: str = "DC"         # "AC" removes the DC part
+    probe_attenuation: float = 1.0
+
+
+@dataclass
+class Impairments:
+    """How far the simulated bench is from ideal.
+
+    ``adc_bits = 0`` is an ideal converter (no quantisation; clipping still applies),
+    for exactness tests.
+    """
+
+    noise_v_rms: tuple[float, float] = (0.0, 0.0)   # per channel, at the probe tip
+    adc_bits: int = 12                             # 8 or 12 (0 = ideal)
+    dc_offsets_v: tuple[float, float] = (0.0, 0.0)
+    clock_offset_ppm: float = 0.0                  # scope sample clock vs generator
+    trigger_jitter_s: float = 0.0
+    skew_s: float = 0.0                            # channel 2 sampled this much later
+
+
+@dataclass(frozen=True)
+class _Drive:
+    """The stimulus in one interval: ``Re{U exp(j w (t - t_ref))} + dc``."""
+
+    phasor: complex
+    omega_rad_s: float
+    dc_v: float
+    t_ref_s: float
+
+
+@dataclass
+class _Segment:
+    """Open-loop state from one generator change on: drive + homogeneous states."""
+
+    t0_s: float
+    drive: _Drive
+    homogeneous: list[np.ndarray]
+
+
+@dataclass
+class _Channel:
+    """A probe channel's linear system with its cached modal form."""
+
+    system: StateSpace
+    delay_s: float
+    modes: tuple[np.ndarray, np.ndarray, np.ndarray] | None = field(default=None)
+
+    def __post_init__(self) -> None:
+        A = self.system.A
+        if self.system.order:
+            eigvals, vecs = np.linalg.eig(A)
+            if np.linalg.cond(vecs) < 1e8:
+                self.modes = (eigvals, vecs, np.linalg.inv(vecs))
+
+    def steady_state(self, drive: _Drive, t_s: float) -> np.ndarray:
+        """State of the steady response at one time."""
+        sys = self.system
+        if sys.order == 0:
+            return np.zeros(0)
+        x_ac = sys.state_phasor(drive.omega_rad_s)
+        x_dc = sys.state_phasor(0.0).real
+        rotation = np.exp(1j * drive.omega_rad_s * (t_s - drive.t_ref_s))
+        return (x_ac * drive.phasor * rotation).real + x_dc * drive.dc_v
+
+    def homogeneous_output(self, x0: np.ndarray, dt_s: np.ndarray) -> np.ndarray:
+        """``C exp(A dt) x0`` for an array of ``dt`` >= 0."""
+        sys = self.system
+        if sys.order == 0 or not np.any(x0):
+            return np.zeros(dt_s.shape)
+        dt = np.maximum(dt_s, 0.0)
+        if self.modes is not None:
+            eigvals, vecs, inv = self.modes
+            weights = (sys.C @ vecs) * (inv @ x0)
+            # Skip modes that have died out over the whole interval (cheap and exact).
+            alive = np.abs(weights) * np.exp(eigvals.real * float(dt.min())) > 1e-300
+            if not np.any(alive):
+                return np.zeros(dt.shape)
+            expo = np.exp(np.multiply.outer(dt, eigvals[alive]))
+            return (expo @ weights[alive]).real
+        return np.array([sys.C @ (scipy.linalg.expm(sys.A * d) @ x0) for d in dt.ravel()]
+                        ).reshape(dt.shape)
+
+    def state_at(self, segment: _Segment, index: int, t_s: float) -> np.ndarray:
+        """Full state at ``t_s`` within ``segment``."""
+        if self.system.order == 0:
+            return np.zeros(0)
+        steady = self.steady_state(segment.drive, t_s)
+        x0 = segment.homogeneous[index]
+        return steady + scipy.linalg.expm(self.system.A * max(t_s - segment.t0_s, 0.0)) @ x0
+
+
+class SimulatedBench:
+    """A generator and a two-channel scope around one DUT (thread-safe).
+
+    Parameters
+    ----------
+    dut
+        A :class:`~mock_instruments.duts.base.DUTModel` or the name/file for
+        :func:`~mock_instruments.duts.load_dut`.
+    impairments
+        Noise, ADC, offsets, clock offset, jitter and skew.
+    seed
+        Seed of the bench's random source (noise, jitter, start-up of a closed loop).
+    clock
+        Returns the bench time in seconds (default ``time.monotonic``).
+
+    Attributes
+    ----------
+    generator
+        The generator's state; change it through :meth:`apply_generator`.
+    channels
+        ``{1: reference probe, 2: response probe}`` vertical settings (edit freely).
+    loop_closed
+        The loop switch; change it through :meth:`set_loop_closed`.
+    """
+
+    def __init__(self, dut: DUTModel | str, impairments: Impairments | None = None, *,
+                 seed: int | None = None, clock: Callable[[], float] = time.monotonic) -> None:
+        self.dut = load_dut(dut) if isinstance(dut, str) else dut
+        self.impairments = impairments if impairments is not None else Impairments()
+        if self.impairments.adc_bits not in (0, 8, 10, 12, 14, 16):
+            raise InputError(f"adc_bits must be 8, 10, 12, 14, 16 or 0 (ideal), "
+                             f"not {self.impairments.adc_bits}")
+        self.clock = clock
+        self.rng = np.random.default_rng(seed)
+        self.generator = GeneratorState()
+        self.channels: dict[int, ScopeChannelState] = {1: ScopeChannelState(),
+                                                      2: ScopeChannelState()}
+        self.loop_closed = False
+        self._lock = threading.RLock()
+        ch1, ch2 = self.dut.probe_transfer_functions()
+        self._ch = [_Channel(ch1.realise(), 0.0), _Channel(ch2.realise(), self.dut.delay_s)]
+        gain, limit = self.dut.stage_gain_and_limit()
+        self._stage_gain = gain
+        self._stage_limit = limit
+        self._phase_rad = 0.0          # generator phase at _phase_t_s
+        self._phase_t_s = float(clock())
+        now = self._phase_t_s
+        zeros = [np.zeros(c.system.order) for c in self._ch]
+        self._segments: list[_Segment] = [_Segment(now, self._drive(now), zeros)]
+        self._closed_run: ClosedLoopRun | None = None
+
+    # --- generator --------------------------------------------------------------------
+    def _drive(self, t_ref_s: float) -> _Drive:
+        g = self.generator
+        if not g.output_on:
+            return _Drive(0j, 2 * np.pi * g.frequency_hz, 0.0, t_ref_s)
+        # sin(phase) = Re{-j exp(j phase)}
+        phasor = (g.amplitude_vpp / 2) * -1j * np.exp(1j * self._phase_rad)
+        return _Drive(phasor, 2 * np.pi * g.frequency_hz, g.offset_v, t_ref_s)
+
+    def apply_generator(self, **changes) -> None:
+        """Update generator fields; a change that alters the stimulus starts a transient.
+
+        Raises
+        ------
+        InputError
+            For an unknown field name.
+        """
+        names = {f.name for f in fields(GeneratorState)}
+        unknown = set(changes) - names
+        if unknown:
+            raise InputError(f"unknown generator field(s) {sorted(unknown)}; "
+                             f"known: {sorted(names)}")
+        with self._lock:
+            new = replace(self.generator, **changes)
+            if new == self.generator:
+                return
+            t = float(self.clock())
+            # Generator phase is continuous across a change (keep the running phase).
+            self._phase_rad = float(np.mod(
+                self._phase_rad + 2 * np.pi * self.generator.frequency_hz * (t - self._phase_t_s),
+                2 * np.pi))
+            self._phase_t_s = t
+            old = self._segments[-1]
+            states = [ch.state_at(old, i, t) for i, ch in enumerate(self._ch)]
+            self.generator = new
+            drive = self._drive(t)
+            homogeneous = [x - ch.steady_state(drive, t)
+                           for x, ch in zip(states, self._ch, strict=True)]
+            self._segments.append(_Segment(t, drive, homogeneous))
+            del self._segments[:-_KEPT_SEGMENTS]
+
+    # --- loop switch ------------------------------------------------------------------
+    def set_loop_closed(self, closed: bool) -> None:
+        """Close (the loop feeds itself, the generator is cut off) or open the loop.
+
+        Closing starts the loop from a little noise; opening starts the open-loop
+        response afresh (a transient from rest).
+        """
+        with self._lock:
+            closed = bool(closed)
+            if closed == self.loop_closed:
+                return
+            t = float(self.clock())
+            self.loop_closed = closed
+            if closed:
+                self._closed_run = ClosedLoopRun(self.dut.loop_system(), self.rng, t)
+            else:
+                self._closed_run = None
+                drive = self._drive(t)
+                homogeneous = [-ch.steady_state(drive, t) for ch in self._ch]
+                self._segments.append(_Segment(t, drive, homogeneous))
+                del self._segments[:-_KEPT_SEGMENTS]
+
+    # --- exact answers ------------------------------------------------------------------
+    def exact_response(self, frequency_hz) -> np.ndarray:
+        """Complex ``H = response / reference`` the bench shows with no impairments."""
+        return self.dut.loop_response(frequency_hz)
+
+    def acquisition_duration_s(self, record_length: int, sample_rate_hz: float) -> float:
+        """Real time one record takes (scope clock offset included)."""
+        return record_length / (sample_rate_hz * (1 + self.impairments.clock_offset_ppm * 1e-6))
+
+    def settling_time_constant_s(self) -> float:
+        """The slowest decaying time constant of the probe signals (seconds)."""
+        taus = self.dut.time_constants_s()
+        return float(taus[0]) if taus.size else 0.0
+
+    # --- acquisition --------------------------------------------------------------------
+    def _harmonics(self, drive: _Drive) -> np.ndarray:
+        """Fourier coefficients (k = 0..HARMONICS) of the saturated stage, input-referred."""
+        theta = 2 * np.pi * np.arange(_HARMONIC_POINTS) / _HARMONIC_POINTS
+        u = drive.dc_v + (drive.phasor * np.exp(1j * theta)).real
+        gain, limit = self._stage_gain, self._stage_limit
+        w = limit * np.tanh(gain * u / limit) / gain
+        spectrum = np.fft.fft(w) / _HARMONIC_POINTS
+        coeffs = 2 * spectrum[: HARMONICS + 1]
+        coeffs[0] = spectrum[0].real
+        return coeffs
+
+    def _open_loop_channel(self, index: int, t: np.ndarray) -> np.ndarray:
+        """Probe-tip volts of one channel at true times ``t`` (open loop)."""
+        ch = self._ch[index]
+        tau = t - ch.delay_s
+        out = np.zeros(t.shape)
+        done = np.zeros(t.shape, dtype=bool)
+        distort = (index == 1 and self._stage_limit is not None
+                   and self.dut.stimulus_on_channel1)
+        for segment in reversed(self._segments):
+            mask = (tau >= segment.t0_s) & ~done
+            if segment is self._segments[0]:
+                mask = ~done
+            if not np.any(mask):
+                continue
+            tt = tau[mask]
+            drive = segment.drive
+            sys = ch.system
+            phase = drive.omega_rad_s * (tt - drive.t_ref_s)
+            if distort and (drive.phasor != 0 or drive.dc_v != 0):
+                coeffs = self._harmonics(drive)
+                y = np.full(tt.shape, sys.response(0.0).real * coeffs[0].real)
+                for k in range(1, HARMONICS + 1):
+                    y += (sys.response(k * drive.omega_rad_s) * coeffs[k]
+                          * np.exp(1j * k * phase)).real
+            else:
+                y = (sys.response(drive.omega_rad_s) * drive.phasor * np.exp(1j * phase)).real
+                y += sys.response(0.0).real * drive.dc_v
+            y += ch.homogeneous_output(segment.homogeneous[index], tt - segment.t0_s)
+            out[mask] = y
+            done |= mask
+        return out
+
+    def _dc_level(self, index: int) -> float:
+        """Steady DC part of a channel (what AC coupling takes away)."""
+        if self.loop_closed:
+            return 0.0
+        drive = self._segments[-1].drive
+        return float(self._ch[index].system.response(0.0).real * drive.dc_v)
+
+    def acquire(self, record_length: int, sample_rate_hz: float) -> dict[int, np.ndarray]:
+        """One record of both channels from one trigger, in probe-tip volts.
+
+        The record starts at the generator's next rising zero crossing after the bench
+        clock's present time (the trigger), moved by the trigger jitter.
+
+        Parameters
+        ----------
+        record_length
+            Samples per channel (>= 2).
+        sample_rate_hz
+            The scope's nominal sample rate.
+
+        Returns
+        -------
+        dict
+            ``{1: reference volts, 2: response volts}``, float64 arrays.
+        """
+        if record_length < 2 or sample_rate_hz <= 0:
+            raise InputError("a record needs at least 2 samples and a positive sample rate")
+        imp = self.impairments
+        with self._lock:
+            now = float(self.clock())
+            g = self.generator
+            if self.loop_closed or not g.output_on:
+                t_trig = now
+            else:
+                t_trig = signal_chain.next_rising_phase_zero_s(
+                    now, g.frequency_hz, self._phase_rad, self._phase_t_s)
+            if imp.trigger_jitter_s > 0:
+                t_trig += abs(self.rng.normal(0.0, imp.trigger_jitter_s))
+            t1 = signal_chain.sample_times(t_trig, record_length, sample_rate_hz,
+                                           imp.clock_offset_ppm)
+            t2 = t1 + imp.skew_s
+            if self.loop_closed:
+                assert self._closed_run is not None
+                start = min(float(t1[0]), float(t2[0]))
+                if start < self._closed_run.t_s:
+                    shift = self._closed_run.t_s - start
+                    t1, t2 = t1 + shift, t2 + shift
+                v1, v2 = self._closed_run.sample([t1, t2])
+            else:
+                v1 = self._open_loop_channel(0, t1)
+                v2 = self._open_loop_channel(1, t2)
+            records = {}
+            for number, volts in ((1, v1), (2, v2)):
+                state = self.channels[number]
+                if state.coupling.upper() == "AC":
+                    volts = volts - self._dc_level(number - 1)
+                volts = volts + imp.dc_offsets_v[number - 1]
+                volts = volts + signal_chain.white_noise(self.rng, imp.noise_v_rms[number - 1],
+                                                         record_length)
+                records[number] = signal_chain.quantise(volts, state.scale_v_per_div,
+                                                        state.offset_v, imp.adc_bits)
+            return records

@@ -1,0 +1,113 @@
+"""DUT models of the simulated bench, registered by name and loadable from YAML.
+
+``load_dut("wien")`` builds a model with its (invented) default values;
+``load_dut("wien", gain=3.2)`` overrides some; ``load_dut("path/to/file.yaml")`` reads a
+DUT file whose ``model:`` key names the model and whose other keys are its parameters.
+Every bad value ends in :class:`loopwright.errors.InputError` naming file, line and field.
+"""
+
+from __future__ import annotations
+
+import importlib
+import pkgutil
+from pathlib import Path
+from typing import Any, TypeVar
+
+from loopwright.errors import InputError
+from loopwright.yamlfile import YamlSource, load_yaml, validate
+from mock_instruments.duts.base import DUTModel, DUTParams, LoopSystem
+
+#: Registered DUT model classes by name.
+DUTS: dict[str, type[DUTModel]] = {}
+
+ModelT = TypeVar("ModelT", bound=type[DUTModel])
+
+
+def register_dut(cls: ModelT) -> ModelT:
+    """Class decorator: register a :class:`DUTModel` subclass under ``cls.name``."""
+    if not cls.name:
+        raise ValueError(f"{cls.__name__} has no name")
+    if cls.name in DUTS and DUTS[cls.name] is not cls:
+        raise ValueError(f"a DUT model named {cls.name!r} is already registered")
+    DUTS[cls.name] = cls
+    return cls
+
+
+def _known() -> str:
+    return ", ".join(sorted(DUTS))
+
+
+def _from_source(source: YamlSource, overrides: dict[str, Any]) -> DUTModel:
+    data = source.data
+    if not isinstance(data, dict):
+        raise source.error((), "a DUT file is a mapping with a 'model:' key and parameters")
+    name = data.get("model")
+    if name is None:
+        raise InputError(f"required field is missing (one of: {_known()})",
+                         path=source.path, line=source.line_of(()), field="model")
+    if name not in DUTS:
+        raise source.error(("model",), f"unknown DUT model {name!r}; known: {_known()}")
+    cls = DUTS[name]
+    if overrides:
+        source = YamlSource(source.path, {**data, **overrides}, source.lines)
+    params = validate(cls.Params, source)
+    return _build(cls, params, source)
+
+
+def _build(cls: type[DUTModel], params: DUTParams, source: YamlSource) -> DUTModel:
+    try:
+        return cls(params)
+    except ValueError as exc:
+        # Cross-field problems found while building the circuit (e.g. an unstable
+        # polynomial form); the model names the field in its message.
+        field = getattr(exc, "field", None)
+        loc = (field,) if field else ()
+        raise source.error(loc, str(exc)) from exc
+
+
+def load_dut(name_or_path: str | Path, **overrides: Any) -> DUTModel:
+    """Build a DUT model from a registered name or a DUT YAML file.
+
+    Parameters
+    ----------
+    name_or_path
+        A name from :data:`DUTS` or the path of a DUT file (``model: <name>`` plus
+        parameters).
+    **overrides
+        Parameter values that replace the defaults or the file's values.
+
+    Returns
+    -------
+    DUTModel
+
+    Raises
+    ------
+    InputError
+        Unknown model, unreadable file, unknown key or bad value (with file:line:field).
+    """
+    _load_models()
+    text = str(name_or_path)
+    if text in DUTS and not Path(text).exists():
+        source = YamlSource(f"<dut {text}>", {"model": text, **overrides}, {})
+        return _from_source(source, {})
+    path = Path(text)
+    if not path.exists() and path.suffix not in (".yaml", ".yml"):
+        raise InputError(f"no DUT model or file named {text!r}; models: {_known()}")
+    return _from_source(load_yaml(path), overrides)
+
+
+def _load_models() -> None:
+    """Import every model module of this package (each registers its models)."""
+    for info in pkgutil.iter_modules(__path__):
+        if info.name != "base":
+            importlib.import_module(f"{__name__}.{info.name}")
+
+
+def model_list() -> list[tuple[str, str]]:
+    """``(name, one-line description)`` of every registered model, sorted by name."""
+    _load_models()
+    return [(name, DUTS[name].description) for name in sorted(DUTS)]
+
+
+__all__ = ["DUTS", "DUTModel", "DUTParams", "LoopSystem", "load_dut",
+           "model_list", "register_dut"]
