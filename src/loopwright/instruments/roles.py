@@ -69,11 +69,15 @@ class Capture:
         Channel number -> samples in volts (at the probe tip: attenuation applied).
     settings
         Channel number -> the vertical settings in force during the acquisition.
+    adc_clipped
+        Channel number -> True when the instrument's raw codes hit the ADC's
+        extremes (binary formats only; the codes say more than the volts can).
     """
 
     sample_rate_hz: float
     volts: dict[int, np.ndarray]
     settings: dict[int, ChannelSettings] = field(default_factory=dict)
+    adc_clipped: dict[int, bool] = field(default_factory=dict)
 
     @property
     def record_length(self) -> int:
@@ -85,7 +89,12 @@ class Capture:
         return np.arange(self.record_length) / self.sample_rate_hz
 
     def clipped(self, channel: int, tolerance_div: float = 0.02) -> bool:
-        """True when any sample of ``channel`` sits on the top or bottom of the screen."""
+        """True when any sample of ``channel`` sits on the top or bottom of the screen.
+
+        Also True when the raw codes hit the ADC's extremes (:attr:`adc_clipped`).
+        """
+        if self.adc_clipped.get(channel, False):
+            return True
         chan = self.settings.get(channel)
         if chan is None:
             return False
