@@ -52,7 +52,12 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _pm(value: float, std: float) -> str:
-    return f"{value:.2f} ± {std:.2g}"
+    return f"{value:.2f} ± {std:.2f}"
+
+
+def _hz(value: float) -> str:
+    text = f"{value:.6g}"
+    return f"{value:,.0f}" if "e" in text else text
 
 
 def print_figures(figures: LoopFigures, name: str, console: Console) -> None:
@@ -70,21 +75,21 @@ def print_figures(figures: LoopFigures, name: str, console: Console) -> None:
     summary.add_row(
         "phase margin (worst)",
         "not reached" if pm is None else
-        f"{_pm(pm.phase_margin_deg, pm.phase_margin_deg_std)} deg at {pm.frequency_hz:,.6g} Hz",
+        f"{_pm(pm.phase_margin_deg, pm.phase_margin_deg_std)} deg at {_hz(pm.frequency_hz)} Hz",
     )
     summary.add_row(
         "gain margin (worst)",
         "not reached" if gm is None else
-        f"{_pm(gm.gain_margin_db, gm.gain_margin_db_std)} dB at {gm.frequency_hz:,.6g} Hz",
+        f"{_pm(gm.gain_margin_db, gm.gain_margin_db_std)} dB at {_hz(gm.frequency_hz)} Hz",
     )
     summary.add_row(
         "oscillation predicted",
         "no" if osc is None else
-        f"yes, at {osc.frequency_hz:,.6g} Hz, excess gain {osc.loop_gain:.4g}",
+        f"yes, at {_hz(osc.frequency_hz)} Hz, excess gain {osc.loop_gain:.4g}",
     )
     summary.add_row(
         "-3 dB bandwidth",
-        "does not apply" if figures.bandwidth_hz is None else f"{figures.bandwidth_hz:,.6g} Hz",
+        "does not apply" if figures.bandwidth_hz is None else f"{_hz(figures.bandwidth_hz)} Hz",
     )
     console.print(summary)
 
@@ -93,10 +98,10 @@ def print_figures(figures: LoopFigures, name: str, console: Console) -> None:
                    "Barkhausen"):
         crossings.add_column(column, justify="right")
     for c in figures.gain_crossovers:
-        crossings.add_row("|H| = 1", f"{c.frequency_hz:,.6g}", "1",
+        crossings.add_row("gain 1", _hz(c.frequency_hz), "1",
                           _pm(c.phase_margin_deg, c.phase_margin_deg_std), "", "")
     for z in figures.zero_phase_crossings:
-        crossings.add_row("angle(H) = 0", f"{z.frequency_hz:,.6g}", f"{z.loop_gain:.4g}", "",
+        crossings.add_row("phase 0", _hz(z.frequency_hz), f"{z.loop_gain:.4g}", "",
                           _pm(z.gain_margin_db, z.gain_margin_db_std),
                           "met" if z.barkhausen_met else "not met")
     if crossings.row_count:
@@ -110,7 +115,7 @@ def print_figures(figures: LoopFigures, name: str, console: Console) -> None:
             peaks.add_column(column, justify="right")
         for r in figures.resonances:
             peaks.add_row(
-                f"{r.frequency_hz:,.6g}", f"{r.peak_db:.2f}",
+                _hz(r.frequency_hz), f"{r.peak_db:.2f}",
                 "" if r.q is None else f"{r.q:.3g}", r.q_method or "",
                 "" if r.bandwidth_hz is None else f"{r.bandwidth_hz:,.4g}",
             )
