@@ -77,7 +77,7 @@ class Rational:
     ----------
     num, den
         Polynomial coefficients; ``den`` must not be all zero and ``H`` must be proper
-        (degree of ``num`` at most that of ``den``).
+        (degree of ``num`` at most that of ``den``) to be realised in state space.
     """
 
     num: np.ndarray
@@ -88,8 +88,6 @@ class Rational:
         den = _trim(self.den)
         if not np.any(den):
             raise ValueError("the denominator is zero")
-        if num.size > den.size:
-            raise ValueError("the transfer function is improper (more zeros than poles)")
         object.__setattr__(self, "num", num)
         object.__setattr__(self, "den", den)
 
@@ -123,7 +121,7 @@ class Rational:
         return self + (-other)
 
     def reciprocal(self) -> Rational:
-        """``1 / H`` (must stay proper)."""
+        """``1 / H``."""
         return Rational(self.den, self.num)
 
     # --- scaling ----------------------------------------------------------------------
@@ -176,7 +174,15 @@ class Rational:
         return self.num.size < self.den.size
 
     def realise(self) -> StateSpace:
-        """A balanced state-space realisation in SI time (seconds)."""
+        """A balanced state-space realisation in SI time (seconds).
+
+        Raises
+        ------
+        ValueError
+            For an improper function (more zeros than poles).
+        """
+        if self.num.size > self.den.size:
+            raise ValueError("the transfer function is improper (more zeros than poles)")
         num_hat, den_hat, w_ref = self._scaled()
         if den_hat.size == 1:
             return StateSpace(np.zeros((0, 0)), np.zeros(0), np.zeros(0),
