@@ -33,7 +33,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
-    from rich.table import Table
 
     from loopwright.errors import InputError
     from loopwright.production.index import open_index, parse_utc
@@ -59,20 +58,17 @@ def run(args: argparse.Namespace) -> int:
         runs = frame["run_id"].nunique() if not frame.empty else 0
         retests = int(frame.drop_duplicates("run_id")["retest"].sum()) if runs else 0
         console.print(f"{where}: {runs} runs ({retests} retests) with limited figures")
-        table = Table()
-        for col in ("figure", "unit", "LSL", "USL", "n", "fail", "mean", "std", "min", "max",
-                    "Cpk"):
-            table.add_column(col, justify="left" if col in ("figure", "unit") else "right")
         for g in groups:
-            table.add_row(
-                g.figure, g.unit or "", _f(g.limit_min), _f(g.limit_max), str(g.count),
-                str(g.failed), _f(g.mean), _f(g.std), _f(g.min), _f(g.max), _f(g.cpk, 3),
+            unit = f" ({g.unit})" if g.unit else ""
+            console.print(
+                f"\n[bold]{g.figure}[/bold]{unit}   LSL {_f(g.limit_min)}   "
+                f"USL {_f(g.limit_max)}\n  [bold]Cpk {_f(g.cpk, 3)}[/bold]  n {g.count}  "
+                f"fail {g.failed}  mean {_f(g.mean)}  std {_f(g.std)}  min {_f(g.min)}  "
+                f"max {_f(g.max)}",
+                highlight=False,
             )
-        console.print(table)
-        for g in groups:
-            console.print(f"\n[bold]{g.figure}[/bold] {g.unit or ''}")
             for line in render_histogram(group_values(frame, g), g):
-                console.print(line, highlight=False)
+                console.print("  " + line, highlight=False)
     if args.png:
         title = where if args.since is None else f"{where} since {args.since}"
         path = write_histogram_png(

@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol, TextIO
 
+from rich.align import Align
 from rich.console import Console, Group
 from rich.panel import Panel
 from rich.table import Table
@@ -27,13 +28,13 @@ from rich.text import Text
 
 from loopwright.errors import InputError, LoopwrightError
 from loopwright.production.index import ResultsIndex, open_index, record_from_run_folder, utc_now
-from loopwright.production.serials import clean_serial, folder_safe
+from loopwright.production.serials import clean_serial
 
 #: Name of the batch record inside the output folder.
 BATCH_RECORD_NAME = "batch.csv"
 #: Columns of ``batch.csv``, in order.
 BATCH_COLUMNS = (
-    "time_utc", "serial", "folder_serial", "station", "operator", "retest", "verdict",
+    "time_utc", "serial", "station", "operator", "retest", "verdict",
     "in_index", "failed_limits", "run_id", "run_dir", "message",
 )
 
@@ -112,7 +113,8 @@ def big_word(word: str) -> str:
         if glyph is None:
             raise ValueError(f"no block letter for {ch!r}")
         rows = [r + g + "  " for r, g in zip(rows, glyph, strict=True)]
-    return "\n".join(r.rstrip() for r in rows)
+    # Equal-length rows (no rstrip), so centring keeps the letters aligned.
+    return "\n".join(r[:-2] for r in rows)
 
 
 _LOOK = {
@@ -126,7 +128,7 @@ _LOOK = {
 def verdict_panel(result: BoardResult) -> Panel:
     """The large verdict shown to the operator: colour, block letters and the word."""
     word, style, border = _LOOK.get(result.verdict, _LOOK["error"])
-    parts: list[Any] = [Text(big_word(word), style=style, justify="center")]
+    parts: list[Any] = [Align.center(Text(big_word(word), style=style))]
     retest = "  (RETEST: this serial was tested before)" if result.retest else ""
     parts.append(Text(f"\n{word}: board {result.serial}{retest}", style=f"bold {border}"))
     if result.verdict == "none":
@@ -179,6 +181,11 @@ def failed_limits(summary: dict[str, Any]) -> list[dict[str, Any]]:
 
 
 # ---------------------------------------------------------------- the loop
+
+
+def _is_terminal(stream: TextIO) -> bool:
+    isatty = getattr(stream, "isatty", None)
+    return bool(isatty and isatty())
 
 
 def _read_line(stream: TextIO) -> str | None:
@@ -264,6 +271,8 @@ def run_batch(
             if line is None:
                 ended_by = "end of input"
                 break
+            if not _is_terminal(input_stream):
+                console.print(line.strip(), highlight=False)  # echo scripted input
             try:
                 serial = clean_serial(line)
             except InputError as exc:
@@ -318,12 +327,19 @@ def _one_board(
         run_dir, summary = run_one(serial, retest=retest, out_dir=out)
     except LoopwrightError as exc:
         return BoardResult(serial, retest, "error", message=f"the run did not finish: {exc}")
+    folder = Path(run_dir).resolve()
+    if not folder.is_relative_to(out.resolve()):
+        # The serial must never steer where files go; refuse to index such a run.
+        return BoardResult(
+            serial, retest, "error", run_dir=str(folder),
+            message=f"the run folder {folder} is outside the output folder {out}; not indexed",
+        )
     verdict = str(summary.get("verdict") or "none")
     result = BoardResult(
         serial,
         retest,
         verdict if verdict in ("pass", "fail", "none") else "error",
-        run_dir=str(Path(run_dir).resolve()),
+        run_dir=str(folder),
         failed_limits=failed_limits(summary),
     )
     try:
@@ -344,7 +360,6 @@ def _record_row(result: BoardResult, station: str, operator: str | None) -> dict
     return {
         "time_utc": utc_now().isoformat(timespec="seconds") + "Z",
         "serial": result.serial,
-        "folder_serial": folder_safe(result.serial),
         "station": station,
         "operator": operator or "",
         "retest": int(result.retest),

@@ -9,8 +9,8 @@ code and hold the same rows.
 Tables (``loopwright-index/1``):
 
 ``runs``
-    ``run_id`` (uuid4, primary key), ``serial`` (as read), ``folder_serial`` (the
-    folder-safe form), ``station``, ``operator``, ``procedure_name``,
+    ``run_id`` (uuid4, primary key), ``serial`` (as read: the folder name has
+    only a safe form of it), ``station``, ``operator``, ``procedure_name``,
     ``procedure_sha256``, ``run_dir`` (absolute path on the station), ``started_utc``,
     ``ended_utc`` (naive UTC), ``status``, ``verdict``, ``retest``, ``host``,
     ``software_version``, ``indexed_utc``. ``(station, run_dir)`` is unique: indexing
@@ -45,7 +45,6 @@ from sqlalchemy import exc as sa_exc
 from sqlalchemy.engine import URL, Connection, Engine, make_url
 
 from loopwright.errors import InputError, LoopwrightError
-from loopwright.production.serials import folder_safe
 
 #: Name of the default SQLite index inside an output folder.
 INDEX_FILE_NAME = "index.sqlite"
@@ -73,7 +72,6 @@ runs_table = sa.Table(
     metadata,
     sa.Column("run_id", sa.String(36), primary_key=True),
     sa.Column("serial", sa.Text, nullable=False),
-    sa.Column("folder_serial", sa.Text, nullable=False),
     sa.Column("station", sa.Text, nullable=False),
     sa.Column("operator", sa.Text),
     sa.Column("procedure_name", sa.Text),
@@ -557,7 +555,6 @@ def _run_row(run_id: str, record: RunRecord, retest: bool) -> dict[str, Any]:
     return {
         "run_id": run_id,
         "serial": record.serial,
-        "folder_serial": folder_safe(record.serial),
         "station": record.station,
         "operator": record.operator,
         "procedure_name": record.procedure_name,

@@ -18,6 +18,9 @@ MAX_SERIAL_CHARS = 128
 #: Longest folder-safe part, in characters (run-folder contract).
 MAX_FOLDER_PART_CHARS = 64
 
+#: What a name with nothing usable in it becomes.
+EMPTY_NAME = "unnamed"
+
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
 
 
@@ -57,10 +60,11 @@ def clean_serial(line: str) -> str:
 def folder_safe(text: str, max_chars: int = MAX_FOLDER_PART_CHARS) -> str:
     """A form of ``text`` that can be one part of a folder name on any file system.
 
-    Compatibility forms are folded first (NFKC: full-width digits become digits), then
-    every character outside ``[A-Za-z0-9._-]`` becomes ``_``, a leading ``.`` becomes
-    ``_`` (no hidden folders, no ``..``) and the result is cut to ``max_chars``.
-    Path separators therefore never survive, so the result cannot leave its parent.
+    The run-folder rule: every character outside ``[A-Za-z0-9._-]`` becomes ``_``
+    (path separators, control characters, spaces, non-ASCII letters), leading dots
+    are dropped (no hidden folders, no ``..``), the result is cut to ``max_chars``,
+    and a name with nothing but ``_`` left becomes ``unnamed``. Path separators never
+    survive, so the result cannot leave its parent folder.
 
     Parameters
     ----------
@@ -72,10 +76,14 @@ def folder_safe(text: str, max_chars: int = MAX_FOLDER_PART_CHARS) -> str:
     Returns
     -------
     str
-        A non-empty name (``_`` for an empty input).
+        A non-empty name.
+
+    Examples
+    --------
+    >>> folder_safe("../../etc")
+    '_.._etc'
+    >>> folder_safe("a/b")
+    'a_b'
     """
-    folded = unicodedata.normalize("NFKC", text)
-    safe = _UNSAFE.sub("_", folded)
-    if safe.startswith("."):
-        safe = "_" + safe[1:]
-    return safe[:max_chars] or "_"
+    safe = _UNSAFE.sub("_", text).lstrip(".")[:max_chars]
+    return safe if safe.strip("_") else EMPTY_NAME
