@@ -234,7 +234,12 @@ class Run:
         return self.response_for(None)
 
     def to_frd(self, step: int | None = None):
-        """The response as python-control's ``FrequencyResponseData`` (omega in rad/s).
+        """The open loop ``L = -H`` as python-control's ``FrequencyResponseData``
+        (omega in rad/s).
+
+        python-control's margins assume negative feedback around ``L``; the stored ``H``
+        is the round trip with the inversion included (``H = -L``), so
+        ``control.stability_margins(run.to_frd())`` gives the margins of summary.json.
 
         Raises
         ------
@@ -248,7 +253,7 @@ class Run:
                            ) from exc
         response = self.response_for(step)
         frequency_hz = np.asarray(response.frequency_hz, dtype=float)
-        return control.FrequencyResponseData(np.asarray(response.h, dtype=complex),
+        return control.FrequencyResponseData(-np.asarray(response.h, dtype=complex),
                                              2.0 * np.pi * frequency_hz)
 
 
