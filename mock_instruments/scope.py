@@ -328,8 +328,13 @@ class BlockScope(SimulatedScope):
     def codes(self, record: Record, n: int) -> np.ndarray:
         """The int16 codes of channel ``n`` of ``record``."""
         y_inc = self.y_increment_v(record.scale_v_per_div[n])
-        codes = np.rint((record.volts[n] - record.offset_v[n]) / y_inc)
-        return np.clip(codes, -32768, 32767).astype(np.int16)
+        codes = np.clip(np.rint((record.volts[n] - record.offset_v[n]) / y_inc), -32768, 32767)
+        # The bench's top ADC level (screen top less one step) is where it clips: send
+        # it as 32767, the code DIALECTS.md gives for clipping at the top.
+        bits = int(getattr(getattr(self.bench, "impairments", None), "adc_bits", 0) or 0)
+        if 0 < bits < 16:
+            codes = np.where(codes >= 32768 - 2 ** (16 - bits), 32767, codes)
+        return codes.astype(np.int16)
 
     def _get_data(self, s: tuple[int, ...], a: list[str]) -> bytes:
         expect_args(a, 0)
@@ -449,7 +454,15 @@ class TextScope(SimulatedScope):
         except CommandError as failure:
             self.errors.push(failure.code, failure.detail)
             return ""
-        return ",".join(np.char.mod("%.7e", record.volts[n]).tolist())
+        volts = record.volts[n]
+        bits = int(getattr(getattr(self.bench, "impairments", None), "adc_bits", 0) or 0)
+        if bits > 0:
+            # The bench's top ADC level is where it clips: report it as the screen top.
+            scale, offset = record.scale_v_per_div[n], record.offset_v[n]
+            top_v = offset + scale * SCREEN_DIVISIONS / 2
+            step_v = scale * SCREEN_DIVISIONS / 2**bits
+            volts = np.where(volts >= top_v - step_v * 1.000001, top_v, volts)
+        return ",".join(np.char.mod("%.7e", volts).tolist())
 
     def _get_xinc(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
