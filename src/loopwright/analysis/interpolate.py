@@ -30,6 +30,9 @@ ComplexArray = NDArray[np.complex128]
 HELD_OUT_TOLERANCE = 1e-3
 #: Fewer points than this cannot validate a rational fit; PCHIP is used.
 MIN_POINTS_FOR_RATIONAL = 8
+#: Most terms of the rational fit: a measured loop of higher order than this is
+#: treated as not rational (noise would otherwise be fitted at great cost).
+MAX_RATIONAL_TERMS = 30
 #: A pole whose pull at the nearest point is below this fraction of |H| there is not
 #: supported by the data (a Froissart doublet).
 DOUBLET_TOLERANCE = 1e-6
@@ -125,7 +128,7 @@ def _fit_rational(z: ComplexArray, h: ComplexArray) -> AAA:
     with warnings.catch_warnings():
         # Not reaching the tolerance is judged by the held-out check, not by a warning.
         warnings.simplefilter("ignore", RuntimeWarning)
-        return AAA(z, h, max_terms=max(2, z.size // 2))
+        return AAA(z, h, max_terms=max(2, min(z.size // 2, MAX_RATIONAL_TERMS)))
 
 
 def _spurious_poles(fit: AAA, z: ComplexArray, h: ComplexArray) -> int:

@@ -42,6 +42,8 @@ RESONANCE_PROMINENCE_DB = 1.0
 FLAT_SLOPE_DB_PER_DECADE = 2.0
 
 _DB_PER_NEPER = 20.0 / np.log(10.0)
+#: "-3 dB" is the half-power level, 10 log10(2) = 3.0103 dB below the reference.
+HALF_POWER_DB = 10.0 * np.log10(2.0)
 _STEP_NEPER = 1e-5
 
 
@@ -329,8 +331,8 @@ def _resonances(curve: _Curve) -> list[Resonance]:
         x_peak = float(best.x) if -best.fun >= curve.log_gain(curve.grid[i]) else curve.grid[i]
         f_peak = float(np.exp(x_peak))
         peak_db = _DB_PER_NEPER * curve.log_gain(x_peak)
-        x_low = _level_crossing(curve, gain_db, int(i), -1, peak_db - 3.0)
-        x_high = _level_crossing(curve, gain_db, int(i), 1, peak_db - 3.0)
+        x_low = _level_crossing(curve, gain_db, int(i), -1, peak_db - HALF_POWER_DB)
+        x_high = _level_crossing(curve, gain_db, int(i), 1, peak_db - HALF_POWER_DB)
         width = None
         if x_low is not None and x_high is not None:
             width = float(np.exp(x_high) - np.exp(x_low))
@@ -351,7 +353,7 @@ def _bandwidth(curve: _Curve, response: FrequencyResponse) -> float | None:
     if abs(slope) > FLAT_SLOPE_DB_PER_DECADE:
         return None
     grid_db = _DB_PER_NEPER * np.log(np.abs(curve.grid_h))
-    x = _level_crossing(curve, grid_db, 0, 1, float(gain_db[0]) - 3.0)
+    x = _level_crossing(curve, grid_db, 0, 1, float(gain_db[0]) - HALF_POWER_DB)
     return None if x is None else float(np.exp(x))
 
 
