@@ -362,7 +362,7 @@ class SimulatedBench:
                 t_trig = signal_chain.next_rising_phase_zero_s(
                     now, g.frequency_hz, self._phase_rad, self._phase_t_s)
             if imp.trigger_jitter_s > 0:
-                t_trig += abs(self.rng.normal(0.0, imp.trigger_jitter_s))
+                t_trig += float(self.rng.normal(0.0, imp.trigger_jitter_s))
             t1 = signal_chain.sample_times(t_trig, record_length, sample_rate_hz,
                                            imp.clock_offset_ppm)
             t2 = t1 + imp.skew_s
