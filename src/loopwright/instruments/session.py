@@ -19,6 +19,7 @@ returns on a socket the peer has closed, so it is not used on sockets, and
 from __future__ import annotations
 
 import re
+import socket
 import threading
 import time
 from collections.abc import Iterator
@@ -106,6 +107,17 @@ def as_traffic_log(target: TrafficLog | str | Path | IO[str] | None) -> TrafficL
     if target is None or isinstance(target, TrafficLog):
         return target
     return TrafficLog(target)
+
+
+def _set_nodelay(resource: Any) -> None:
+    """Switch Nagle off on a pyvisa-py socket (it does not expose the VISA attribute)."""
+    sessions = getattr(getattr(resource, "visalib", None), "sessions", None)
+    if not isinstance(sessions, dict):
+        return
+    sock = getattr(sessions.get(getattr(resource, "session", None)), "interface", None)
+    if isinstance(sock, socket.socket):
+        with suppress(OSError):
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 
 
 def resource_manager(backend: str | VisaLibraryBase = "@py") -> pyvisa.ResourceManager:
@@ -277,6 +289,9 @@ class Session:
             if self.is_socket:
                 resource.read_termination = "\n"
                 resource.write_termination = "\n"
+                # Back-to-back writes (a command, then the error query) would otherwise
+                # wait for the peer's delayed ACK (Nagle): about 40 ms each.
+                _set_nodelay(resource)
             resource.timeout = self._timeout_s * 1000.0
             self._needs_sync = False
             self._note("note", "open")
