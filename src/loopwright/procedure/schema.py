@@ -233,6 +233,19 @@ class Bench(_Model):
         return self._source
 
     @property
+    def simulated_dut(self) -> str | None:
+        """The simulated DUT: a model name as given, or a DUT file resolved against the
+        bench file's folder (a name ending in .yaml/.yml). None for a real bench."""
+        if self.simulated is None:
+            return None
+        dut = self.simulated.dut
+        if dut.lower().endswith((".yaml", ".yml")) and self._source is not None:
+            base = Path(self._source.path).parent
+            candidate = Path(dut) if Path(dut).is_absolute() else base / dut
+            return str(candidate)
+        return dut
+
+    @property
     def has_switch(self) -> bool:
         """True if a loop switch can close the loop (a real switch or the simulated one)."""
         return self.switch is not None or self.simulated is not None
