@@ -8,8 +8,6 @@ in-process pyvisa backend, so the same driver code runs either way.
 from __future__ import annotations
 
 import contextlib
-
-import contextlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
