@@ -237,15 +237,18 @@ class _Curve:
         return float(np.hypot(data_g, model_g[0])), float(np.hypot(data_p, model_p[0]))
 
     def roots(self, values: FloatArray, func: Any) -> list[float]:
-        """Roots of ``func`` bracketed by sign changes of ``values`` on the grid."""
+        """Roots of ``func`` bracketed by sign changes of ``values`` on the grid.
+
+        A value exactly zero counts only inside the range with its neighbours on
+        opposite sides; at either end nobody can tell whether the curve crossed.
+        """
         found: list[float] = []
         for i in range(values.size - 1):
             if values[i] == 0.0:
-                found.append(float(self.grid[i]))
+                if i > 0 and values[i - 1] * values[i + 1] < 0.0:
+                    found.append(float(self.grid[i]))
             elif values[i] * values[i + 1] < 0.0:
                 found.append(float(brentq(func, self.grid[i], self.grid[i + 1], xtol=1e-13)))
-        if values[-1] == 0.0:
-            found.append(float(self.grid[-1]))
         return found
 
 
