@@ -291,13 +291,27 @@ def test_examples_exist():
             "oscillator-startup.yaml", "production-quick.yaml"} <= names
 
 
+def _simulated_benches():
+    return [load_bench(p) for p in _example_files()
+            if p.name.startswith("bench") and "simulated:" in p.read_text(encoding="utf-8")]
+
+
 @pytest.mark.parametrize("path", _example_files(), ids=lambda p: p.name)
 def test_example_files_validate(path: Path):
     text = path.read_text(encoding="utf-8")
     assert "invented" in text.lower()      # examples say they are invented scenarios
     if path.name.startswith("bench"):
         load_bench(path)
+        return
+    procedure = load_procedure(path)
+    # every shipped procedure can run on at least one shipped simulated bench
+    refusals = []
+    for bench in _simulated_benches():
+        try:
+            check_against_bench(procedure, bench)
+        except (SafetyError, InputError) as exc:
+            refusals.append(str(exc))
+        else:
+            break
     else:
-        procedure = load_procedure(path)
-        check_against_bench(procedure, load_bench(data_dir("procedures") /
-                                                  "bench-simulated.yaml"))
+        pytest.fail(f"no shipped simulated bench accepts {path.name}: {refusals}")
