@@ -293,34 +293,37 @@ class SimulatedBench:
         coeffs[0] = spectrum[0].real
         return coeffs
 
-    def _open_loop_channel(self, index: int, t: np.ndarray) -> np.ndarray:
-        """Probe-tip volts of one channel at true times ``t`` (open loop)."""
+    def _open_loop_channel(self, index: int, t_base_s: float, dt_s: np.ndarray) -> np.ndarray:
+        """Probe-tip volts of one channel at true times ``t_base_s + dt_s`` (open loop).
+
+        Times are kept as a base plus small offsets so that phases stay accurate to
+        the last bit even when the bench clock reads 1e5 s (an uptime).
+        """
         ch = self._ch[index]
-        tau = t - ch.delay_s
-        out = np.zeros(t.shape)
-        done = np.zeros(t.shape, dtype=bool)
+        base = t_base_s - ch.delay_s
+        out = np.zeros(dt_s.shape)
+        done = np.zeros(dt_s.shape, dtype=bool)
         distort = (index == 1 and self._stage_limit is not None
                    and self.dut.stimulus_on_channel1)
         for segment in reversed(self._segments):
-            mask = (tau >= segment.t0_s) & ~done
-            if segment is self._segments[0]:
-                mask = ~done
+            mask = ~done if segment is self._segments[0] else \
+                (dt_s >= segment.t0_s - base) & ~done
             if not np.any(mask):
                 continue
-            tt = tau[mask]
+            dt = dt_s[mask]
             drive = segment.drive
             sys = ch.system
-            phase = drive.omega_rad_s * (tt - drive.t_ref_s)
+            phase = drive.omega_rad_s * ((base - drive.t_ref_s) + dt)
             if distort and (drive.phasor != 0 or drive.dc_v != 0):
                 coeffs = self._harmonics(drive)
-                y = np.full(tt.shape, sys.response(0.0).real * coeffs[0].real)
+                y = np.full(dt.shape, sys.response(0.0).real * coeffs[0].real)
                 for k in range(1, HARMONICS + 1):
                     y += (sys.response(k * drive.omega_rad_s) * coeffs[k]
                           * np.exp(1j * k * phase)).real
             else:
                 y = (sys.response(drive.omega_rad_s) * drive.phasor * np.exp(1j * phase)).real
                 y += sys.response(0.0).real * drive.dc_v
-            y += ch.homogeneous_output(segment.homogeneous[index], tt - segment.t0_s)
+            y += ch.homogeneous_output(segment.homogeneous[index], (base - segment.t0_s) + dt)
             out[mask] = y
             done |= mask
         return out
@@ -363,19 +366,18 @@ class SimulatedBench:
                     now, g.frequency_hz, self._phase_rad, self._phase_t_s)
             if imp.trigger_jitter_s > 0:
                 t_trig += float(self.rng.normal(0.0, imp.trigger_jitter_s))
-            t1 = signal_chain.sample_times(t_trig, record_length, sample_rate_hz,
-                                           imp.clock_offset_ppm)
-            t2 = t1 + imp.skew_s
+            dt1 = signal_chain.sample_times(0.0, record_length, sample_rate_hz,
+                                            imp.clock_offset_ppm)
             if self.loop_closed:
                 assert self._closed_run is not None
-                start = min(float(t1[0]), float(t2[0]))
-                if start < self._closed_run.t_s:
-                    shift = self._closed_run.t_s - start
-                    t1, t2 = t1 + shift, t2 + shift
-                v1, v2 = self._closed_run.sample([t1, t2])
+                run = self._closed_run
+                start = t_trig + min(0.0, imp.skew_s)
+                if start < run.t_s:         # never before the loop's own present
+                    t_trig += run.t_s - start
+                v1, v2 = run.sample([t_trig + dt1, t_trig + imp.skew_s + dt1])
             else:
-                v1 = self._open_loop_channel(0, t1)
-                v2 = self._open_loop_channel(1, t2)
+                v1 = self._open_loop_channel(0, t_trig, dt1)
+                v2 = self._open_loop_channel(1, t_trig + imp.skew_s, dt1)
             records = {}
             for number, volts in ((1, v1), (2, v2)):
                 state = self.channels[number]
