@@ -27,13 +27,17 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
-from matplotlib.ticker import EngFormatter, MultipleLocator
+from matplotlib.ticker import EngFormatter, FuncFormatter, MultipleLocator, NullFormatter
+from matplotlib.transforms import offset_copy
 
 from loopwright.report import palette
 from loopwright.report.formatting import engineering, is_number
 
-#: Width of a limit mask around a crossing: a quarter decade each side.
-MASK_HALF_WIDTH_DECADES = 0.25
+#: Half width of a limit mask (a "gate") around a crossing, in decades (±12 %).
+MASK_HALF_WIDTH_DECADES = 0.05
+#: Half height of a frequency limit's band around 0 dB or 0 deg.
+FREQUENCY_MASK_HALF_DB = 3.0
+FREQUENCY_MASK_HALF_DEG = 20.0
 #: Uncertainty bands are drawn at ± this many standard deviations.
 BAND_SIGMAS = 2.0
 FLAG_NAMES = tuple(palette.FLAG_STYLES)
@@ -71,9 +75,29 @@ def wrap_breaks(frequency_hz: np.ndarray, phase_deg: np.ndarray) -> tuple[np.nda
     )
 
 
+def _minor_label(value: float, _pos: int) -> str:
+    """Label the 2x and 5x minor ticks (for spans under two decades)."""
+    mantissa = value / 10.0 ** math.floor(math.log10(value) + 1e-9)
+    if any(abs(mantissa - m) < 1e-6 for m in (2.0, 5.0)):
+        return _ENG(value)
+    return ""
+
+
+_ENG = EngFormatter(unit="Hz", places=0)
+
+
+def _label_minor_ticks(*axes) -> None:
+    """Under two decades the major ticks are too few: label the 2x and 5x ticks too."""
+    low, high = axes[0].get_xlim()
+    if low > 0 and math.log10(high / low) < 2.0:
+        for ax in axes:
+            ax.xaxis.set_minor_formatter(FuncFormatter(_minor_label))
+
+
 def _frequency_axis(ax) -> None:
     ax.set_xscale("log")
     ax.xaxis.set_major_formatter(EngFormatter(unit="Hz", places=0))
+    ax.xaxis.set_minor_formatter(NullFormatter())
     ax.grid(True, which="major", color="#BBBBBB", linewidth=0.6)
     ax.grid(True, which="minor", color="#E5E5E5", linewidth=0.4)
 
@@ -150,7 +174,9 @@ def draw_limit_masks(
       (and below ``-max`` dB), since the gain margin is -|H| in dB there.
     - ``excess_gain`` / ``loop_gain``: near each 0° crossing, the gain below
       20·log10(min) (and above 20·log10(max)).
-    - any figure in Hz: the frequencies outside [min, max], on both panels.
+    - a frequency of a 0° crossing (``oscillation_frequency_hz``,
+      ``gain_margin_frequency_hz``): a band around 0° outside [min, max]; of a gain
+      crossover: a band around 0 dB; any other figure in Hz: full height.
     """
     analysis = analysis or {}
     crossovers = [c["frequency_hz"] for c in analysis.get("gain_crossovers") or []
@@ -190,7 +216,16 @@ def draw_limit_masks(
                     _shade(ax_gain, x0, x1, 20.0 * math.log10(hi), g_high)
                 shaded = shaded or bool(zero_phase)
         elif figure.endswith("_hz"):
-            for ax, (y0, y1) in ((ax_gain, (g_low, g_high)), (ax_phase, (-180.0, 180.0))):
+            # Where the figure is a 0 deg crossing, the phase trace must cross 0 deg
+            # inside [min, max]: shade a band around 0 deg outside it. Where it is a
+            # gain crossover, the same around 0 dB; otherwise full height.
+            if "oscillation" in figure or figure.startswith("gain_margin"):
+                bands = [(ax_phase, -FREQUENCY_MASK_HALF_DEG, FREQUENCY_MASK_HALF_DEG)]
+            elif "crossover" in figure or figure.startswith("phase_margin"):
+                bands = [(ax_gain, -FREQUENCY_MASK_HALF_DB, FREQUENCY_MASK_HALF_DB)]
+            else:
+                bands = [(ax_gain, g_low, g_high), (ax_phase, -180.0, 180.0)]
+            for ax, y0, y1 in bands:
                 if lo is not None and lo > x_low:
                     _shade(ax, x_low, lo, y0, y1)
                     shaded = True
@@ -202,64 +237,86 @@ def draw_limit_masks(
     return shaded
 
 
-class _Placer:
-    """Places annotation boxes so that they neither overlap nor leave their axes."""
+def _dense_trace(frequency_hz: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """(x, y) samples along a trace, 8 per segment in log f, for collision tests."""
+    ok = np.isfinite(frequency_hz) & np.isfinite(values) & (frequency_hz > 0)
+    f, v = frequency_hz[ok], values[ok]
+    if f.size < 2:
+        return np.column_stack([f, v])
+    x = np.log10(f)
+    fine = np.linspace(0.0, x.size - 1.0, (x.size - 1) * 8 + 1)
+    return np.column_stack([10.0 ** np.interp(fine, np.arange(x.size), x),
+                            np.interp(fine, np.arange(x.size), v)])
 
-    # Offsets in points from the anchor, tried in order.
+
+class _Placer:
+    """Places annotation boxes clear of each other, of the traces, and inside the axes."""
+
+    # Offsets in points from the anchor, tried in order (nearest first).
     CANDIDATES = (
-        (14, 22), (14, -34), (-14, 22), (-14, -34),
-        (14, 48), (14, -60), (-14, 48), (-14, -60), (40, 74), (40, -86),
+        *((dx * k, dy * k) for k in (1, 2, 3, 4)
+          for dx, dy in ((14, 18), (14, -30), (-14, 18), (-14, -30))),
+        (60, 0), (-60, 0), (120, 30), (-120, 30), (120, -40), (-120, -40),
     )
 
-    def __init__(self, fig: Figure) -> None:
+    def __init__(self, fig: Figure, traces: Mapping[object, Sequence[np.ndarray]]) -> None:
         self.fig = fig
+        self.traces = traces
         self.placed: list = []
+
+    def _hits_trace(self, ax, box) -> bool:
+        padded = box.padded(3.0)
+        for trace in self.traces.get(ax, ()):
+            if trace.size == 0:
+                continue
+            xy = ax.transData.transform(trace)
+            inside = ((xy[:, 0] >= padded.x0) & (xy[:, 0] <= padded.x1)
+                      & (xy[:, 1] >= padded.y0) & (xy[:, 1] <= padded.y1))
+            if inside.any():
+                return True
+        return False
+
+    def _make(self, ax, x: float, y: float, text: str, colour: str, dx: float, dy: float):
+        return ax.annotate(
+            text,
+            xy=(x, y),
+            xytext=(dx, dy),
+            textcoords="offset points",
+            ha="left" if dx > 0 else "right" if dx < 0 else "center",
+            va="bottom" if dy > 0 else "top" if dy < 0 else "center",
+            fontsize=8,
+            color="#000000",
+            bbox={"boxstyle": "round,pad=0.3", "fc": "white", "ec": colour, "lw": 0.8},
+            arrowprops={"arrowstyle": "-", "color": colour, "lw": 0.8},
+            zorder=6,
+        )
 
     def annotate(self, ax, x: float, y: float, text: str, colour: str) -> None:
         renderer = self.fig.canvas.get_renderer()
         axes_box = ax.get_window_extent(renderer)
-        best = None
+        fallback = None
         for dx, dy in self.CANDIDATES:
-            ann = ax.annotate(
-                text,
-                xy=(x, y),
-                xytext=(dx, dy),
-                textcoords="offset points",
-                ha="left" if dx > 0 else "right",
-                va="bottom" if dy > 0 else "top",
-                fontsize=8,
-                color="#000000",
-                bbox={"boxstyle": "round,pad=0.3", "fc": "white", "ec": colour, "lw": 0.8},
-                arrowprops={"arrowstyle": "-", "color": colour, "lw": 0.8},
-                zorder=6,
-            )
+            ann = self._make(ax, x, y, text, colour, dx, dy)
             box = ann.get_window_extent(renderer)
-            inside = (
-                box.x0 >= axes_box.x0 and box.x1 <= axes_box.x1
-                and box.y0 >= axes_box.y0 and box.y1 <= axes_box.y1
-            )
+            inside = (box.x0 >= axes_box.x0 and box.x1 <= axes_box.x1
+                      and box.y0 >= axes_box.y0 and box.y1 <= axes_box.y1)
             clear = not any(box.overlaps(other) for other in self.placed)
-            if inside and clear:
+            if inside and clear and not self._hits_trace(ax, box):
                 self.placed.append(box)
                 return
-            if best is None and clear:
-                best = (dx, dy)
+            if fallback is None and inside and clear:
+                fallback = (dx, dy)
             ann.remove()
-        dx, dy = best or self.CANDIDATES[0]
-        ann = ax.annotate(
-            text, xy=(x, y), xytext=(dx, dy), textcoords="offset points",
-            ha="left" if dx > 0 else "right", va="bottom" if dy > 0 else "top",
-            fontsize=8, bbox={"boxstyle": "round,pad=0.3", "fc": "white", "ec": colour,
-                              "lw": 0.8},
-            arrowprops={"arrowstyle": "-", "color": colour, "lw": 0.8}, zorder=6,
-        )
+        dx, dy = fallback or self.CANDIDATES[0]
+        ann = self._make(ax, x, y, text, colour, dx, dy)
         self.placed.append(ann.get_window_extent(renderer))
 
 
-def _annotate_figures(fig: Figure, ax_gain, ax_phase, analysis: Mapping | None) -> None:
+def _annotate_figures(fig: Figure, ax_gain, ax_phase, analysis: Mapping | None,
+                      traces: Mapping[object, Sequence[np.ndarray]]) -> None:
     if not analysis:
         return
-    placer = _Placer(fig)
+    placer = _Placer(fig, traces)
     fig.canvas.draw()  # lays out the constrained axes before boxes are measured
     x_low, x_high = ax_gain.get_xlim()
     for crossing in analysis.get("gain_crossovers") or []:
@@ -364,25 +421,35 @@ def bode_figure(
     flags = points["flags"].map(_split_flags) if "flags" in points.columns else None
     if flags is not None:
         for name, style in palette.FLAG_STYLES.items():
-            chosen = flags.map(lambda fl, name=name: name in fl).to_numpy(dtype=bool)
-            if not chosen.any():
+            # A point with several flags shows each marker, stacked upwards, so
+            # none hides another.
+            rank = flags.map(lambda fl, name=name: fl.index(name) if name in fl else -1)
+            rank = rank.to_numpy(dtype=int)
+            if not (rank >= 0).any():
                 continue
             kwargs = {"marker": style["marker"], "s": 36, "facecolor": style["colour"],
                       "edgecolor": "black", "linewidths": 0.6, "zorder": 4}
-            ax_gain.scatter(frequency_hz[chosen], gain_db[chosen], **kwargs)
-            ax_phase.scatter(frequency_hz[chosen], phase_deg[chosen], **kwargs)
+            for level in np.unique(rank[rank >= 0]):
+                chosen = rank == level
+                for ax, values in ((ax_gain, gain_db), (ax_phase, phase_deg)):
+                    shift = offset_copy(ax.transData, fig=fig, y=9.0 * level, units="points")
+                    ax.scatter(frequency_hz[chosen], values[chosen], transform=shift,
+                               **kwargs)
             handles.append(Line2D([], [], linestyle="none", marker=style["marker"], ms=7,
                                   mfc=style["colour"], mec="black", mew=0.6,
-                                  label=f"{style['label']} ({int(chosen.sum())})"))
+                                  label=f"{style['label']} ({int((rank >= 0).sum())})"))
 
     finite_f = frequency_hz[np.isfinite(frequency_hz) & (frequency_hz > 0)]
     if finite_f.size:
         ax_gain.set_xlim(finite_f.min() / 1.15, finite_f.max() * 1.15)
+        _label_minor_ticks(ax_gain, ax_phase)
     ax_gain.set_ylim(*_gain_limits(gain_db, gain_std))
     if draw_limit_masks(ax_gain, ax_phase, analysis, limits):
         handles.append(Patch(facecolor=palette.MASK_FILL, edgecolor=palette.MASK_EDGE,
                              hatch=palette.MASK_HATCH, label="outside a limit"))
-    _annotate_figures(fig, ax_gain, ax_phase, analysis)
+    traces = {ax_gain: [_dense_trace(frequency_hz, gain_db)],
+              ax_phase: [_dense_trace(*wrap_breaks(frequency_hz, phase_deg))]}
+    _annotate_figures(fig, ax_gain, ax_phase, analysis, traces)
     fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4),
                frameon=False)
     return fig
@@ -424,6 +491,7 @@ def overlay_figure(
             on_run(label)
     if high_f > 0:
         ax_gain.set_xlim(low_f / 1.15, high_f * 1.15)
+        _label_minor_ticks(ax_gain, ax_phase)
     if gains:
         ax_gain.set_ylim(*_gain_limits(np.concatenate(gains), None))
     fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4),

@@ -45,13 +45,18 @@ def fixed(value: float | None, decimals: int = 2, unit: str = "") -> str:
     return f"{text} {unit}".strip() if unit else text
 
 
+def degrees(value: float | None, decimals: int = 2) -> str:
+    """An angle with a degree sign (``27.14°``); an en dash when missing."""
+    return fixed(value, decimals) + "°" if is_number(value) else "–"
+
+
 def figure_value(value: float | None, unit: str | None) -> str:
     """A limit's value in its own unit: Hz and V get prefixes, the rest fixed decimals."""
     unit = unit or ""
     if unit in ("Hz", "V", "s", "A"):
         return engineering(value, unit)
     if unit == "deg":
-        return fixed(value, 2, "°")
+        return degrees(value)
     if unit == "%":
         return fixed(value, 3, "%")
     return fixed(value, 3, unit)

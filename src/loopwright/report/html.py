@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from loopwright.report import palette
-from loopwright.report.formatting import engineering, figure_value, fixed, is_number
+from loopwright.report.formatting import degrees, engineering, figure_value, fixed, is_number
 
 CSS = f"""
 :root {{ color-scheme: light; }}
@@ -157,23 +157,34 @@ def verdict_section(summary: Mapping[str, Any]) -> str:
 def figures_section(analysis: Mapping[str, Any]) -> str:
     """Tables of the loop figures of ``summary.json["analysis"]``."""
     parts = []
+    osc = analysis.get("oscillation_predicted")
     worst = [
-        ["phase margin (worst)", esc(fixed(analysis.get("phase_margin_deg"), 2, "°"))],
-        ["gain margin (worst)", esc(fixed(analysis.get("gain_margin_db"), 2, "dB"))],
-        ["oscillation predicted",
-         "yes" if analysis.get("oscillation_predicted") else "no"],
-        ["predicted oscillation frequency",
-         esc(engineering(analysis.get("oscillation_frequency_hz"), "Hz", 6))],
-        ["-3 dB bandwidth", esc(engineering(analysis.get("bandwidth_hz"), "Hz", 5))],
+        ["phase margin (worst)", esc(degrees(analysis.get("phase_margin_deg"))),
+         esc(degrees(analysis.get("phase_margin_deg_std"), 3)),
+         esc(engineering(analysis.get("phase_margin_frequency_hz"), "Hz", 6))],
+        ["gain margin (worst)", esc(fixed(analysis.get("gain_margin_db"), 2, "dB")),
+         esc(fixed(analysis.get("gain_margin_db_std"), 3, "dB")),
+         esc(engineering(analysis.get("gain_margin_frequency_hz"), "Hz", 6))],
+        ["oscillation predicted (Barkhausen)",
+         "yes" if osc else "no",
+         "",
+         esc(engineering(analysis.get("oscillation_frequency_hz"), "Hz", 6)) if osc else "–"],
+        ["excess gain", esc(fixed(analysis.get("excess_gain"), 4)), "", ""],
+        ["−3 dB bandwidth", esc(engineering(analysis.get("bandwidth_hz"), "Hz", 5)), "", ""],
     ]
-    parts.append(table(["figure", "value"], worst, numeric=[False, True]))
+    parts.append(table(["figure", "value", "±1σ", "at"], worst,
+                       numeric=[False, True, True, True]))
+    method, why = analysis.get("interpolation"), analysis.get("interpolation_note")
+    if method:
+        detail = f": {esc(why)}" if why else ""
+        parts.append(f'<p class="muted">Between points: {esc(method)}{detail}</p>')
     crossovers = analysis.get("gain_crossovers") or []
     if crossovers:
         parts.append("<h3>Gain crossovers (|H| = 1)</h3>")
         parts.append(table(
             ["frequency", "phase margin"],
             [[esc(engineering(c.get("frequency_hz"), "Hz", 6)),
-              esc(fixed(c.get("phase_margin_deg"), 2, "°"))] for c in crossovers],
+              esc(degrees(c.get("phase_margin_deg")))] for c in crossovers],
             numeric=[True, True]))
     zeros = analysis.get("zero_phase_crossings") or []
     if zeros:
@@ -230,7 +241,7 @@ def calibration_section(calibration: pd.DataFrame | None, svg: str | None) -> st
         esc(engineering(float(calibration['frequency_hz'].min()), "Hz")),
         esc(engineering(float(calibration['frequency_hz'].max()), "Hz")),
         esc(fixed(float(np.max(np.abs(db))), 3, "dB")),
-        esc(fixed(float(np.max(np.abs(deg))), 3, "°")),
+        esc(degrees(float(np.max(np.abs(deg))), 3)),
     ]]
     body = ("<p>Both probes on one node; the mismatch (channel 2 / channel 1) is divided "
             "out of the sweeps that followed.</p>")
@@ -265,7 +276,7 @@ def provenance_section(manifest: Mapping[str, Any]) -> str:
                        ("calibration", "calibration from")):
         if manifest.get(key):
             rows.append([label, esc(manifest.get(key))])
-    body = table(["", ""], rows)
+    body = table(["field", "value"], rows)
     instruments = manifest.get("instruments") or {}
     if instruments:
         body += "<h3>Instruments</h3>"
