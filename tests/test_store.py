@@ -303,6 +303,8 @@ def test_calibration_round_trip_and_interpolation(tmp_path):
     mid = mismatch_at([np.sqrt(1e3 * 1e4)], cal_f, cal_m)[0]
     assert 20 * np.log10(abs(mid)) == pytest.approx(20 * np.log10(1.1) * 1.5)
     assert np.angle(mid) == pytest.approx(-0.15)
+    scalar = mismatch_at(1e3, cal_f, cal_m)               # a scalar in, a complex out
+    assert isinstance(scalar, complex) and scalar == pytest.approx(mismatch[1])
 
 
 # ---------------------------------------------------------------------- loading

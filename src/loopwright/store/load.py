@@ -130,11 +130,16 @@ def read_calibration(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
 
 
 def mismatch_at(frequency_hz: Any, calibration_frequency_hz: np.ndarray,
-                calibration_mismatch: np.ndarray) -> np.ndarray:
+                calibration_mismatch: np.ndarray) -> Any:
     """The channel mismatch at any frequencies: gain in dB and unwrapped phase
     interpolated linearly in log f, held at the end values outside the calibration.
 
     Divide a measured ratio by this to take the channel mismatch out.
+
+    Returns
+    -------
+    complex or numpy.ndarray
+        A complex number for a scalar frequency, else a complex array of its shape.
     """
     f = np.atleast_1d(np.asarray(frequency_hz, dtype=float))
     cal_f = np.asarray(calibration_frequency_hz, dtype=float)
@@ -145,7 +150,10 @@ def mismatch_at(frequency_hz: Any, calibration_frequency_hz: np.ndarray,
     log_cal = np.log10(cal_f)
     gain_db = np.interp(log_f, log_cal, 20.0 * np.log10(np.abs(cal_m)))
     phase = np.interp(log_f, log_cal, np.unwrap(np.angle(cal_m)))
-    return 10.0 ** (gain_db / 20.0) * np.exp(1j * phase)
+    result = 10.0 ** (gain_db / 20.0) * np.exp(1j * phase)
+    if np.ndim(frequency_hz) == 0:
+        return complex(result[0])
+    return result.reshape(np.shape(frequency_hz))
 
 
 @dataclass
