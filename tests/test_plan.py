@@ -7,6 +7,8 @@ import math
 import control
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from loopwright.errors import InputError
 from loopwright.procedure import (
@@ -216,3 +218,33 @@ def test_refinement_stops_at_spacing_floor():
     h = np.array([2.0, 0.5], dtype=complex)           # a crossover between them
     assert refine_points(f, h, RefineSettings(min_relative_spacing=0.001)).size == 0
     assert refine_points(f, h, RefineSettings(min_relative_spacing=1e-4)).size == 1
+
+
+# ---------------------------------------------------------------------- properties
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.floats(1.0, 1e7), min_size=2, max_size=40, unique=True),
+       st.data(), st.integers(0, 12), st.integers(0, 12))
+def test_refinement_properties(frequencies, data, cap, already):
+    f = np.array(frequencies)
+    n = f.size
+    gains = np.array(data.draw(st.lists(st.floats(1e-3, 1e3), min_size=n, max_size=n)))
+    phases = np.array(data.draw(st.lists(st.floats(-np.pi, np.pi), min_size=n, max_size=n)))
+    h = gains * np.exp(1j * phases)
+    new = refine_points(f, h, RefineSettings(max_extra_points=cap), already_added=already)
+    assert new.size <= max(0, cap - already)
+    assert np.all(np.diff(new) > 0)                         # sorted, unique
+    assert not np.any(np.isclose(new[:, None], f[None, :], rtol=1e-9, atol=0))
+    if new.size:
+        assert new.min() > f.min() and new.max() < f.max()  # only between measured points
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.floats(1e-3, 1e6), st.floats(1.0001, 1e4), st.floats(0.5, 200))
+def test_log_plan_properties(start, ratio, ppd):
+    step = sweep(start_hz=start, stop_hz=start * ratio, points_per_decade=ppd)
+    plan = frequency_plan(step)
+    assert plan[0] == start and plan[-1] == start * ratio
+    assert np.all(np.diff(plan) > 0) and plan.size == planned_count(step)
+    # steps never wider than one grid step of 10**(1/ppd)
+    assert np.all(plan[1:] / plan[:-1] <= 10 ** (1 / ppd) * (1 + 1e-9))

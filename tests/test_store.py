@@ -13,6 +13,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from loopwright.errors import InputError, RunError
 from loopwright.store import (
@@ -364,3 +366,31 @@ def test_load_run_without_points(tmp_path):
     assert run.summary is None
     with pytest.raises(RunError, match="no points"):
         _ = run.response
+
+
+# ---------------------------------------------------------------------- properties
+
+@settings(max_examples=100, deadline=None)
+@given(st.text(max_size=120))
+def test_safe_part_properties(text):
+    part = safe_part(text)
+    assert 1 <= len(part) <= 64
+    assert not part.startswith(".")
+    assert set(part) <= set("ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz"
+                            "0123456789._-")
+    assert part not in (".", "..")
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.lists(st.floats(allow_nan=False, allow_infinity=False, width=64), min_size=1,
+                max_size=5))
+def test_float_columns_round_trip_exactly(tmp_path_factory, values):
+    root = tmp_path_factory.mktemp("floats")
+    folder = RunFolder.create(root, "p", "s", {}, now=MOMENT)
+    for i, value in enumerate(values):
+        folder.append_point({"step": 0, "frequency_hz": 1.0 + i, "gain_re": value,
+                             "gain_im": -value})
+    folder.close()
+    resumed = RunFolder.open_for_resume(folder.path)
+    assert [p["gain_re"] for p in resumed.done_points] == values
+    assert load_run(folder.path).points["gain_im"].tolist() == [-v for v in values]
