@@ -251,11 +251,15 @@ class ErrorQueue:
         self._on_error = on_error
         self._lock = threading.Lock()
 
-    def push(self, code: int, detail: str = "") -> None:
-        """Add an error; ``detail`` follows the standard text after a ``;``."""
-        text = ERROR_TEXTS.get(code, "Device-specific error")
-        if detail:
-            text = f"{text}; {detail}"
+    def push(self, code: int, detail: str = "", *, text: str | None = None) -> None:
+        """Add an error; ``detail`` follows the standard text after a ``;``.
+
+        ``text`` replaces the whole text (an injected error says exactly what it is told).
+        """
+        if text is None:
+            text = ERROR_TEXTS.get(code, "Device-specific error")
+            if detail:
+                text = f"{text}; {detail}"
         text = text.replace('"', "'")
         with self._lock:
             if len(self._entries) >= self.capacity:
@@ -330,7 +334,9 @@ class SimulatedInstrument:
         self.event_status = 0
         self._opc_pending = False
         self.errors = ErrorQueue(on_error=self._note_error)
-        self.faults = Faults(push_error=self.errors.push, seed=seed)
+        self.faults = Faults(
+            push_error=lambda code, text: self.errors.push(code, text=text), seed=seed
+        )
         self.tree = CommandTree()
         self.tree.add(self.error_query, query=lambda s, a: self.errors.pop())
         self.define(self.tree)
