@@ -187,7 +187,21 @@ def test_calibration_borrows_next_sweep_plan():
 def test_calibration_without_plan_needs_a_following_sweep():
     text = PROCEDURE + "  - kind: calibrate_channels\n"
     error = _error(text)
+    assert (error.line, error.field) == (16, "steps[2]")
     assert "no sweep follows" in error.message
+    text = PROCEDURE + "  - kind: calibrate_channels\n    count: 5\n    start_hz: 1\n" \
+        "    stop_hz: 10\n"
+    error = _error(text)
+    assert (error.line, error.field) == (16, "steps[2]")
+    assert "without an amplitude" in error.message
+
+
+def test_closed_loop_limit_needs_closed_loop_step():
+    text = PROCEDURE.replace("figure: phase_margin_deg", "figure: closed_loop_thd_pct")
+    error = _error(text)
+    assert (error.line, error.field) == (6, "limits[0].figure")
+    assert "closed_loop_check" in error.message
+    loads_procedure(text + "  - kind: closed_loop_check\n    switch: prompt\n")
 
 
 def test_step_not_a_mapping():

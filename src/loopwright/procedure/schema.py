@@ -634,14 +634,26 @@ class Procedure(_Model):
         return _no_bool(value)
 
     @model_validator(mode="after")
-    def _calibration_has_plan(self) -> Procedure:
+    def _steps_fit_together(self) -> Procedure:
+        # Messages start with the item's path; the loader moves them to its line.
         for index, step in enumerate(self.steps):
-            if (isinstance(step, CalibrateStep) and not step.has_own_plan
-                    and self.next_sweep(index) is None):
+            if not isinstance(step, CalibrateStep) or self.next_sweep(index) is not None:
+                continue
+            if not step.has_own_plan:
                 raise ValueError(
-                    f"steps[{index}] (calibrate_channels) has no frequency plan and no"
-                    " sweep follows it to take one from; give start_hz/stop_hz or"
-                    " frequencies_hz")
+                    f"steps[{index}]: a calibrate_channels step without a frequency plan"
+                    " takes the next sweep's, but no sweep follows; give start_hz/stop_hz"
+                    " or frequencies_hz")
+            if not step.has_amplitude:
+                raise ValueError(
+                    f"steps[{index}]: a calibrate_channels step without an amplitude takes"
+                    " the next sweep's, but no sweep follows; give amplitude_vpp")
+        has_closed_loop = any(isinstance(s, ClosedLoopStep) for s in self.steps)
+        for index, limit in enumerate(self.limits):
+            if limit.figure.startswith("closed_loop_") and not has_closed_loop:
+                raise ValueError(
+                    f"limits[{index}].figure: {limit.figure} is measured by a"
+                    " closed_loop_check step, and this procedure has none")
         return self
 
     @property
@@ -759,6 +771,13 @@ def _improve(error: InputError, root: type[BaseModel], source: YamlSource) -> In
     """Sharpen yamlfile's messages: keys of the step's own kind; "did you mean" for values."""
     message = error.message
     loc = _field_loc(error.field)
+    located = re.match(r"^((?:steps|limits)\[\d+\](?:\.\w+)?): (.*)$", message)
+    if not loc and located is not None:
+        # A whole-file check that names the item it is about: point at that item.
+        item = _field_loc(located.group(1))
+        moved = source.error(item, located.group(2))
+        moved.__cause__ = error.__cause__
+        return moved
     if message.startswith("unknown key") and loc:
         model = _model_at(root, source.data, loc)
         if model is not None:
