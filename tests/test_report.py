@@ -423,6 +423,18 @@ def test_export_json_holds_everything(amplifier_run, tmp_path):
     assert len(data["calibration"]) == 12
 
 
+def test_export_cli_to_stdout_and_file(amplifier_run, tmp_path, capsys):
+    assert main(["export", str(amplifier_run), "--format", "csv"]) == 0
+    text = capsys.readouterr().out
+    assert text == (export_run(amplifier_run, "csv", tmp_path / "a.csv")
+                    .read_text(encoding="utf-8"))
+    out = tmp_path / "b.json"
+    assert main(["export", str(amplifier_run), "--format", "json", "--out", str(out)]) == 0
+    assert json.loads(out.read_text())["run"] == amplifier_run.name
+    assert main(["export", str(amplifier_run), "--format", "json", "--out",
+                 str(tmp_path / "no" / "such" / "x.json")]) == 2
+
+
 # --- compare -----------------------------------------------------------------------------
 
 
@@ -468,12 +480,17 @@ def test_compare_cli_with_progress_and_bad_out(three_boards, tmp_path, capsys):
     assert "must end in .html" in capsys.readouterr().err
 
 
-def test_compare_progress_bar_is_drawn_on_stderr(three_boards, tmp_path, capsys):
-    render_comparison(three_boards, tmp_path / "p.html", progress=True)
-    err = capsys.readouterr().err
-    # rich writes the bar to stderr; nothing goes to stdout.
-    assert capsys.readouterr().out == ""
-    assert isinstance(err, str)
+def test_compare_progress_bar_counts_every_run(three_boards, tmp_path):
+    import io
+
+    from rich.console import Console
+
+    buffer = io.StringIO()
+    console = Console(file=buffer, force_terminal=True, width=100)
+    render_comparison(three_boards, tmp_path / "p.html", progress=True, console=console)
+    drawn = buffer.getvalue()
+    assert "reading runs" in drawn and "drawing runs" in drawn
+    assert "3/3" in drawn
 
 
 # --- CLI and bad input ------------------------------------------------------------------

@@ -19,13 +19,18 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--format", required=True, choices=FORMATS, dest="fmt",
                         help="csv or json")
     parser.add_argument("--out", default=None, metavar="FILE",
-                        help="the file to write (default: export.csv/.json in the run folder)")
+                        help="the file to write (default: standard output)")
     parser.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
-    """Write the export and print its path."""
-    from loopwright.report.export import export_run
+    """Write the export to ``--out`` (and print its path) or to standard output."""
+    import sys
 
-    print(export_run(args.run_dir, args.fmt, args.out))
+    from loopwright.report.export import export_run, export_text
+
+    if args.out is None:
+        sys.stdout.write(export_text(args.run_dir, args.fmt))
+    else:
+        print(export_run(args.run_dir, args.fmt, args.out))
     return 0

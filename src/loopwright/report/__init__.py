@@ -43,8 +43,10 @@ def render_report_input(data: ReportInput) -> ReportFiles:
     limits = summary.get("limits") or []
     bode_fig = bode.bode_figure(data.points, analysis, limits, title=_title(data))
     png = bode.save_png(bode_fig, data.path / "bode.png")
-    svg = bode.save_svg(bode_fig, data.path / "bode.svg")
-    bode_inline = bode.svg_text(bode_fig, "bode-")
+    svg_document = bode.svg_document(bode_fig)
+    svg = data.path / "bode.svg"
+    svg.write_text(svg_document, encoding="utf-8")
+    bode_inline = bode.inline_svg(svg_document, "bode-")
 
     closed_loop_svg = None
     if data.closed_loop_time_s is not None:

@@ -494,7 +494,7 @@ def overlay_figure(
         _label_minor_ticks(ax_gain, ax_phase)
     if gains:
         ax_gain.set_ylim(*_gain_limits(np.concatenate(gains), None))
-    fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4),
+    fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 6),
                frameon=False)
     return fig
 
@@ -505,19 +505,22 @@ def save_png(fig: Figure, path: Path) -> Path:
     return path
 
 
-def svg_text(fig: Figure, id_prefix: str) -> str:
-    """``fig`` as an ``<svg>`` element for inlining into HTML.
+def svg_document(fig: Figure) -> str:
+    """``fig`` as a standalone SVG document (glyphs as paths, stable ids, no date)."""
+    buffer = io.StringIO()
+    with matplotlib.rc_context(_RC):
+        fig.savefig(buffer, format="svg", facecolor="white", metadata={"Date": None})
+    return buffer.getvalue()
+
+
+def inline_svg(document: str, id_prefix: str) -> str:
+    """An SVG document as an ``<svg>`` element for inlining into HTML.
 
     The XML prolog, DOCTYPE and metadata block are dropped (the metadata names outside
     vocabularies), and every element id gets ``id_prefix`` so several figures can share
     one HTML document without their ids colliding.
     """
-    buffer = io.StringIO()
-    with matplotlib.rc_context(_RC):
-        fig.savefig(buffer, format="svg", facecolor="white",
-                    metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
-    text = buffer.getvalue()
-    text = text[text.index("<svg"):]
+    text = document[document.index("<svg"):]
     text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, flags=re.S)
     ids = set(re.findall(r'\bid="([^"]+)"', text))
     if ids:
@@ -533,9 +536,6 @@ def svg_text(fig: Figure, id_prefix: str) -> str:
     return text
 
 
-def save_svg(fig: Figure, path: Path) -> Path:
-    """Write ``fig`` as a standalone SVG file and return the path."""
-    with matplotlib.rc_context(_RC):
-        fig.savefig(path, format="svg", facecolor="white",
-                    metadata={"Date": None})
-    return path
+def svg_text(fig: Figure, id_prefix: str) -> str:
+    """``fig`` as an inline ``<svg>`` element; see :func:`inline_svg`."""
+    return inline_svg(svg_document(fig), id_prefix)

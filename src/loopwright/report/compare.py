@@ -16,6 +16,8 @@ from pathlib import Path
 from typing import NamedTuple
 
 import numpy as np
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
 from loopwright.errors import InputError
 from loopwright.report import bode
@@ -96,13 +98,14 @@ def comparison_html(runs: Sequence[ReportInput], labels: Sequence[str], svg: str
     rows = []
     for label, run in zip(labels, runs, strict=False):
         verdict = str(run.summary.get("verdict") or "none")
-        row = [esc(label), esc(run.manifest.get("serial")), esc(verdict)]
+        shown = f"<strong>{esc(verdict)}</strong>" if verdict == "fail" else esc(verdict)
+        row = [esc(label), esc(run.manifest.get("serial")), shown]
         for key, _, _, decimals in FIGURES:
             value = figure_values([run.summary], key)[0]
             row.append(esc(_number(value, "", decimals)))
         rows.append(row)
     per_run = html_report.table(header, rows, numeric=[False] * 3 + [True] * len(FIGURES),
-                                row_classes=["fail" if r.summary.get("verdict") == "fail"
+                                row_classes=["failed-run" if r.summary.get("verdict") == "fail"
                                              else "" for r in runs])
     stats_rows = []
     for key, title, unit, decimals in FIGURES:
@@ -133,20 +136,18 @@ def comparison_html(runs: Sequence[ReportInput], labels: Sequence[str], svg: str
     return html_report.document(title, body)
 
 
-def _progress(enabled: bool):
+def _progress(enabled: bool, console: Console | None):
     if not enabled:
         return nullcontext(None)
-    from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
-
     return Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-                    console=Console(file=sys.stderr), transient=True)
+                    console=console or Console(file=sys.stderr), transient=console is None)
 
 
 def render_comparison(
     run_dirs: Sequence[str | Path],
     out: str | Path = "comparison.html",
     progress: bool = False,
+    console: Console | None = None,
 ) -> ComparisonFiles:
     """Overlay the runs of ``run_dirs`` and write ``out`` (HTML) and its PNG beside it.
 
@@ -157,7 +158,9 @@ def render_comparison(
     out
         The HTML file; the PNG gets the same name with ``.png``.
     progress
-        Show a progress bar on stderr (reading, then drawing, each run).
+        Show a progress bar (reading, then drawing, each run).
+    console
+        Where the bar goes (default: a rich console on stderr).
     """
     if not run_dirs:
         raise InputError("no run folders given to compare")
@@ -166,7 +169,7 @@ def render_comparison(
         raise InputError("the output file must end in .html", path=out)
     if not out.parent.is_dir():
         raise InputError("the output folder does not exist", path=out.parent)
-    with _progress(progress) as bar:
+    with _progress(progress, console) as bar:
         task = None if bar is None else bar.add_task("reading runs", total=len(run_dirs))
         runs = []
         for run_dir in run_dirs:

@@ -99,8 +99,17 @@ def export_csv(data: ReportInput) -> str:
     return points_table(data.points).to_csv(index=False, lineterminator="\n")
 
 
-def export_run(run_dir: str | Path, fmt: str, out: str | Path | None = None) -> Path:
-    """Write the export of ``run_dir`` in ``fmt`` (``csv`` or ``json``).
+def export_text(run_dir: str | Path, fmt: str) -> str:
+    """The export of ``run_dir`` in ``fmt`` (``csv`` or ``json``) as text."""
+    if fmt not in FORMATS:
+        raise InputError(f"unknown format {fmt!r}; choose one of {', '.join(FORMATS)}",
+                         field="format")
+    data = report_input(run_dir)
+    return export_csv(data) if fmt == "csv" else export_json(data)
+
+
+def export_run(run_dir: str | Path, fmt: str, out: str | Path) -> Path:
+    """Write the export of ``run_dir`` in ``fmt`` (``csv`` or ``json``) to ``out``.
 
     Parameters
     ----------
@@ -109,19 +118,15 @@ def export_run(run_dir: str | Path, fmt: str, out: str | Path | None = None) -> 
     fmt
         ``csv`` (points, for a spreadsheet) or ``json`` (everything, for a script).
     out
-        Output file; default ``<run_dir>/export.<fmt>``.
+        Output file.
 
     Returns
     -------
     Path
         The file written.
     """
-    if fmt not in FORMATS:
-        raise InputError(f"unknown format {fmt!r}; choose one of {', '.join(FORMATS)}",
-                         field="format")
-    data = report_input(run_dir)
-    text = export_csv(data) if fmt == "csv" else export_json(data)
-    target = Path(out) if out is not None else data.path / f"export.{fmt}"
+    text = export_text(run_dir, fmt)
+    target = Path(out)
     try:
         target.write_text(text, encoding="utf-8")
     except OSError as exc:

@@ -49,6 +49,7 @@ tr {{ break-inside: avoid; page-break-inside: avoid; }}
 tr.pass td:last-child {{ color: #00664A; font-weight: 600; }}
 tr.fail td {{ background: #FBEDE3; }}
 tr.fail td:last-child {{ color: #9A3D00; }}
+tr.failed-run td {{ background: #FBEDE3; }}
 figure {{ margin: 8px 0 14px 0; break-inside: avoid; page-break-inside: avoid; }}
 figure svg {{ width: 100%; height: auto; display: block; }}
 figcaption {{ font-size: 12px; color: #333; margin-top: 4px; }}
