@@ -91,7 +91,7 @@ def start_simulated(bench: Bench) -> tuple[Any, Any, dict[str, str], Any]:
 
     entry = bench.simulated
     assert entry is not None
-    dut = load_dut(entry.dut)
+    dut = load_dut(bench.simulated_dut or entry.dut)
     noise = float(entry.noise_v_rms)
     sim = SimulatedBench(dut, Impairments(noise_v_rms=(noise, noise)), seed=entry.seed)
     if entry.transport == "in_process":
