@@ -82,7 +82,7 @@ def test_output_off_after_signal(tmp_path, start_sim_bench, sig, exit_code):
     run_dir = wait_for_points(out, 3, process)
     assert server.bench.generator.output_on
     process.send_signal(sig)
-    stdout, stderr = process.communicate(timeout=30)
+    _stdout, stderr = process.communicate(timeout=30)
     assert process.returncode == exit_code, stderr
     assert not server.bench.generator.output_on
     manifest = json.loads((run_dir / "manifest.json").read_text())
@@ -98,7 +98,7 @@ def test_output_off_after_instrument_stops_answering(tmp_path, start_sim_bench):
                            server.resources), out)
     run_dir = wait_for_points(out, 2, process)
     server.instruments["scope"].faults.stop_answering()
-    stdout, stderr = process.communicate(timeout=60)
+    _stdout, stderr = process.communicate(timeout=60)
     assert process.returncode == 1
     assert "run failed" in stderr and "Traceback" not in stderr
     assert not server.bench.generator.output_on
@@ -145,7 +145,7 @@ def test_resume_after_sigkill_loses_and_repeats_nothing(tmp_path, start_sim_benc
     assert len(before) >= 6
     # a killed runner cannot switch anything off; a resume starts from a fresh state
     resumed = start_runner(procedure, bench, out, "--resume", str(run_dir))
-    stdout, stderr = resumed.communicate(timeout=120)
+    _stdout, stderr = resumed.communicate(timeout=120)
     assert resumed.returncode == 0, stderr
     after = load_run(run_dir).points
     assert len(after) == 24
