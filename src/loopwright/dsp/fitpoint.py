@@ -48,7 +48,7 @@ def estimate_sinefit(
     *,
     harmonics: int = 9,
     refine: bool = True,
-    max_offset_ppm: float = 1000.0,
+    max_offset_ppm: float = 500.0,
 ) -> PointEstimate:
     """Gain/phase by least-squares sine fits (the default estimator).
 

@@ -179,7 +179,8 @@ def _as_records(y: NDArray, name: str = "y") -> NDArray:
     arr = np.asarray(y, dtype=np.float64)
     if arr.ndim < 1 or arr.shape[-1] == 0:
         raise EstimationError(f"{name} is empty: pass a record of samples")
-    if not np.all(np.isfinite(arr)):
+    # a finite sum means no NaN/inf (they propagate); only an overflow needs the full check
+    if not np.isfinite(np.sum(arr)) and not np.all(np.isfinite(arr)):
         raise EstimationError(f"{name} contains NaN or inf: remove or re-capture those samples")
     return np.ascontiguousarray(arr)
 
@@ -287,47 +288,51 @@ def fit_sine_3p(
 
 
 def seed_frequency(
-    y: NDArray, sample_rate_hz: float, frequency_hz: float, max_offset_ppm: float = 1000.0
+    y: NDArray, sample_rate_hz: float, frequency_hz: float, max_offset_ppm: float = 500.0
 ) -> float:
     """Interpolated DFT peak near ``frequency_hz`` (Hann window), in Hz.
 
-    The peak is searched within ``max_offset_ppm`` (at least one bin) of the nominal
-    frequency on a half-bin grid of the Hann-windowed DTFT, then refined with the Hann
-    two-bin ratio ``delta = (2 alpha - 1) / (alpha + 1)`` (Grandke, IEEE Trans. IM 32(2),
-    1983 (mem)). Narrow searches evaluate the DTFT directly (the Hann window as three
-    shifted plain DTFTs), wide ones use one real FFT.
+    The peak is searched within ``max_offset_ppm`` (plus one bin) of the nominal
+    frequency on a one-bin grid of the Hann-windowed DTFT, then refined with the Hann
+    two-bin ratio ``delta = (2 alpha - 1) / (alpha + 1)`` (Grandke, IEEE Trans. IM
+    32(2), 1983 (mem)). Searches up to about 60 bins wide evaluate the DTFT on the grid
+    directly (the Hann window as three plain DTFTs one bin apart, ``O(N)`` per pass);
+    wider ones take one real FFT of the windowed record.
     """
     y = _as_records(y)
     n_samples = y.shape[-1]
     bin_rad = TWO_PI / n_samples
     theta0 = TWO_PI * frequency_hz / sample_rate_hz
     cycles = theta0 / bin_rad
-    span = max(1.0, abs(max_offset_ppm) * 1e-6 * cycles)
-    lo = max(cycles - span, 0.5 * cycles, 1.0)
-    hi = min(cycles + span, 1.5 * cycles, n_samples / 2 - 1.0)
+    span = int(np.ceil(abs(max_offset_ppm) * 1e-6 * cycles)) + 1
+    lo = max(0.5 * cycles, 1.0)
+    hi = min(1.5 * cycles, n_samples / 2 - 1.0)
     mean = float(np.mean(y))
-    if 2 * (hi - lo) + 9 <= 48:
-        # half-bin grid, two bins wider each side: one for the window, one for neighbours
-        grid = np.arange(lo - 2.0, hi + 2.0 + 1e-9, 0.5)
+    if 2 * span + 5 <= 64:
+        # one-bin grid, two bins wider each side: one for the window, one for neighbours
+        grid = cycles + np.arange(-span - 2, span + 3, dtype=np.float64)
         s, _ = data_sums(y, grid * bin_rad)
         s = s - mean * np.conj(tone_sums(grid * bin_rad, n_samples, 0)[0])
         # Hann window = 0.5 - 0.5 cos(2 pi n / N): three plain DTFTs one bin apart
-        mag = np.abs(0.5 * s[2:-2] - 0.25 * s[:-4] - 0.25 * s[4:])
-        inner = slice(2, mag.size - 2)  # grid points within [lo, hi]
-        i = 2 + int(np.argmax(mag[inner]))
-        peak = float(grid[i + 2])
-        here, left, right = mag[i], mag[i - 2], mag[i + 2]
+        mag = np.abs(0.5 * s[1:-1] - 0.25 * s[:-2] - 0.25 * s[2:])  # mag[i] at grid[i + 1]
+        centre = grid[1:-1]
+        ok = (centre >= lo) & (centre <= hi)
+        ok[[0, -1]] = False
+        if not ok.any():
+            return float(frequency_hz)
+        i = int(np.argmax(np.where(ok, mag, -1.0)))
+        peak = float(centre[i])
+        here, left, right = mag[i], mag[i - 1], mag[i + 1]
     else:
         import scipy.fft
 
         window = 0.5 - 0.5 * np.cos(bin_rad * np.arange(n_samples))
         spec = np.abs(scipy.fft.rfft((y - mean) * window, workers=1))
-        k_lo, k_hi = int(np.floor(lo)), int(np.ceil(hi))
+        k_lo = max(int(np.floor(max(cycles - span, lo))), 1)
+        k_hi = min(int(np.ceil(min(cycles + span, hi))), spec.size - 2)
         k = k_lo + int(np.argmax(spec[k_lo : k_hi + 1]))
         peak = float(k)
-        here = spec[k]
-        left = spec[k - 1] if k >= 1 else 0.0
-        right = spec[k + 1] if k + 1 < spec.size else 0.0
+        here, left, right = spec[k], spec[k - 1], spec[k + 1]
     if here <= 0:
         return float(frequency_hz)
     if right >= left:
@@ -345,7 +350,7 @@ def fit_sine_4p(
     sample_rate_hz: float,
     frequency_hz: float,
     harmonics: int = 1,
-    max_offset_ppm: float = 1000.0,
+    max_offset_ppm: float = 500.0,
     seed: bool = True,
     max_iterations: int = 20,
 ) -> SineFit:
