@@ -3,15 +3,24 @@
 The loop is ``dx/dt = A x + B w``, ``v = C x``, ``w = stage(v)`` (see
 :mod:`mock_instruments.duts.base`). It starts from a little noise; an oscillator's
 amplitude then grows until the stage's soft saturation holds it, so frequency and
-amplitude come out of the integration, not from a formula. A fixed-step classic
-Runge-Kutta (4th order) with ``steps_per_cycle`` steps per period of the fastest mode
-keeps the phase error far below the 2 % the tests ask for; samples between steps come
-from cubic Hermite interpolation (values and slopes at the steps).
+amplitude come out of the integration, not from a formula.
+
+The linear network is stepped exactly (matrix exponential of the augmented system)
+and only the stage's output ``w`` is approximated, as the parabola through the
+previous, present and next values (third order, implicit in the next value, which a
+scalar Newton iteration on the loop voltage finds). Because the network's own dynamics
+are exact, the step only has to follow ``w``: 64 steps per period of the fastest
+closed-loop mode keep frequency errors below 1e-4 and amplitude errors near 1e-4
+against scipy's DOP853 at tight tolerances (tests/test_closed_loop.py). Samples
+between steps come from cubic Hermite interpolation (values and slopes at the steps).
 """
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
+import scipy.linalg
 
 from loopwright.errors import InputError
 from mock_instruments.duts.base import LoopSystem
@@ -41,7 +50,7 @@ class ClosedLoopRun:
     """
 
     def __init__(self, system: LoopSystem, rng: np.random.Generator, t_start_s: float, *,
-                 steps_per_cycle: int = 40, start_noise_v: float = 1e-5,
+                 steps_per_cycle: int = 64, start_noise_v: float = 1e-5,
                  max_advance_cycles: float = 400.0) -> None:
         self.system = system
         net = system.network
@@ -49,36 +58,84 @@ class ClosedLoopRun:
         self._B = net.B
         self._C = net.C
         closed = net.A + system.gain * np.outer(net.B, net.C)
-        eigs = np.concatenate([np.linalg.eigvals(net.A), np.linalg.eigvals(closed)])
-        fastest = float(np.max(np.abs(eigs))) if eigs.size else 1.0
+        closed_eigs = np.linalg.eigvals(closed)
+        fastest = float(np.max(np.abs(closed_eigs))) if closed_eigs.size else 1.0
         self.step_s = 2 * np.pi / (steps_per_cycle * fastest)
-        oscillatory = np.abs(eigs.imag[np.abs(eigs.imag) > 0])
-        slowest = float(np.min(oscillatory)) if oscillatory.size else float(np.min(np.abs(eigs)))
+        oscillatory = np.abs(closed_eigs.imag[np.abs(closed_eigs.imag) > 0])
+        slowest = (float(np.min(oscillatory)) if oscillatory.size
+                   else float(np.min(np.abs(closed_eigs))))
         self.max_advance_s = max_advance_cycles * 2 * np.pi / max(slowest, 1e-30)
         x = rng.normal(0.0, 1.0, net.order)
         level = abs(float(self._C @ x)) or 1.0
         self.x = x * start_noise_v / level
         self.t_s = float(t_start_s)
+        self._discrete: dict[float, tuple] = {}
 
     # --- integration ---------------------------------------------------------------------
-    def _derivative(self, x: np.ndarray) -> np.ndarray:
-        """dx/dt for states ``x`` (last axis = state)."""
-        w = self.system.stage(x @ self._C)
-        return x @ self._A.T + np.multiply.outer(w, self._B)
+    def _hold_matrices(self, h: float) -> tuple:
+        """Exact step ``h`` of the network for a polynomial ``w`` (cached per ``h``).
 
-    def _steps(self, x: np.ndarray, count: int, h: float) -> np.ndarray:
-        """States at ``count`` + 1 points spaced ``h`` (first = ``x``)."""
-        out = np.empty((count + 1, x.size))
-        out[0] = x
-        f = self._derivative
+        With ``u = tau / h``, ``w = w0 + w1 u + w2 u^2 / 2`` over a step gives
+        ``x(h) = phi x0 + g0 w0 + g1 w1 + g2 w2`` (blocks of one augmented expm).
+        """
+        key = round(h, 18)
+        if key not in self._discrete:
+            n = self._A.shape[0]
+            big = np.zeros((n + 3, n + 3))
+            big[:n, :n] = self._A * h
+            big[:n, n] = self._B * h
+            big[n, n + 1] = 1.0
+            big[n + 1, n + 2] = 1.0
+            e = scipy.linalg.expm(big)
+            self._discrete = {key: (e[:n, :n], e[:n, n], e[:n, n + 1], e[:n, n + 2])}
+        return self._discrete[key]
+
+    def _steps(self, x: np.ndarray, count: int, h: float) -> tuple[np.ndarray, np.ndarray]:
+        """States and stage outputs at ``count`` + 1 points spaced ``h`` (first = ``x``).
+
+        ``w`` across a step is the parabola through the previous, present and next stage
+        outputs (the first step uses a straight line); the next one is implicit and
+        solved by Newton's method on the loop voltage.
+        """
+        phi, g0, g1, g2 = self._hold_matrices(h)
+        # Line through (w0, w_next):  x1 = phi x0 + (g0 - g1) w0 + g1 w_next.
+        line_old, line_new = g0 - g1, g1
+        # Parabola through (w_prev, w0, w_next) at u = -1, 0, 1.
+        par_prev, par_old, par_new = g2 - g1 / 2, g0 - 2 * g2, g1 / 2 + g2
+        C = self._C
+        c_line, c_par = float(C @ line_new), float(C @ par_new)
+        gain, limit = self.system.gain, self.system.limit
+        states = np.empty((count + 1, x.size))
+        stage_out = np.empty(count + 1)
+        states[0] = x
+        y = float(C @ x)
+        w = limit * math.tanh(gain * y / limit) if limit is not None else gain * y
+        stage_out[0] = w
+        w_prev = None
         for i in range(count):
-            k1 = f(x)
-            k2 = f(x + 0.5 * h * k1)
-            k3 = f(x + 0.5 * h * k2)
-            k4 = f(x + h * k3)
-            x = x + (h / 6.0) * (k1 + 2 * k2 + 2 * k3 + k4)
-            out[i + 1] = x
-        return out
+            if w_prev is None:
+                partial = phi @ x + line_old * w
+                g_new, c_new = line_new, c_line
+            else:
+                partial = phi @ x + par_old * w + par_prev * w_prev
+                g_new, c_new = par_new, c_par
+            base = float(C @ partial)
+            w_prev = w
+            if limit is None:
+                w = gain * base / (1.0 - c_new * gain)
+            else:
+                # Solve y = base + c_new L tanh(K y / L) for y (Newton from y_prev).
+                for _ in range(4):
+                    th = math.tanh(gain * y / limit)
+                    residual = y - base - c_new * limit * th
+                    slope = 1.0 - c_new * gain * (1.0 - th * th)
+                    y -= residual / slope
+                w = limit * math.tanh(gain * y / limit)
+            x = partial + g_new * w
+            y = float(C @ x)
+            states[i + 1] = x
+            stage_out[i + 1] = w
+        return states, stage_out
 
     def advance_to(self, t_s: float) -> None:
         """Run the loop up to ``t_s`` (at most ``max_advance_s`` of it is integrated)."""
@@ -87,13 +144,14 @@ class ClosedLoopRun:
             return
         span = min(gap, self.max_advance_s)
         count = int(np.ceil(span / self.step_s))
-        self.x = self._steps(self.x, count, span / count)[-1]
+        self.x = self._steps(self.x, count, self.step_s)[0][-1]
         self.t_s = float(t_s)
 
     def sample(self, times_s: list[np.ndarray]) -> list[np.ndarray]:
-        """Loop voltage at each array of times (ascending; all at or after the loop's time).
+        """Loop voltage at each array of times (all at or after the loop's time).
 
-        The state ends at the last sample time, so the next call continues from there.
+        The state ends at the first step at or after the last sample time, so the next
+        call continues from there.
         """
         t_min = min(float(t.min()) for t in times_s)
         t_max = max(float(t.max()) for t in times_s)
@@ -104,11 +162,11 @@ class ClosedLoopRun:
             raise InputError(
                 f"a closed-loop record of {span:.3g} s needs {count} integration steps "
                 f"(limit {MAX_STEPS}); use fewer cycles per record")
-        h = span / count if span > 0 else self.step_s
-        states = self._steps(self.x, count, h)
+        h = self.step_s
+        states, stage_out = self._steps(self.x, count, h)
         grid_t = self.t_s + h * np.arange(count + 1)
         values = states @ self._C
-        slopes = self._derivative(states) @ self._C
+        slopes = (states @ self._A.T + np.multiply.outer(stage_out, self._B)) @ self._C
         self.x = states[-1]
         self.t_s = float(grid_t[-1])
         return [_hermite(grid_t, values, slopes, t) for t in times_s]

@@ -9,11 +9,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
+from loopwright.errors import InputError
 from mock_instruments.bench import Impairments, SimulatedBench
 from mock_instruments.duts import load_dut
 from mock_instruments.signal_chain import quantisation_step_v
-
-from loopwright.errors import InputError
 
 IDEAL = Impairments(adc_bits=0)
 
@@ -174,9 +174,9 @@ class TestSoftNonlinearity:
         third = fit_phasor(rec[2], f, fs, harmonic=3)
         a = amplitude_vpp / 2
         K, L = dut.params.gain, dut.params.output_limit_v
-        # The stimulus is a sine (phase -90 deg): sin^3 gives -sin(3x)/4, a 3rd harmonic
-        # phasor of +j/4 a^3 for the -x^3/3 term's coefficient...
-        series = -(K**2) * a**3 / (12 * L**2) * (1j)
+        # The stimulus is a sin x: u - K^2 u^3/(3 L^2) and sin^3 x = (3 sin x - sin 3x)/4
+        # give + K^2 a^3/(12 L^2) sin 3x, i.e. the phasor -j K^2 a^3 / (12 L^2).
+        series = -1j * K**2 * a**3 / (12 * L**2)
         expected = complex(dut.loop_response(3 * f)) * series
         assert third == pytest.approx(expected, rel=0.02)
 
