@@ -27,6 +27,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field, fields, replace
+from pathlib import Path
 
 import numpy as np
 import scipy.linalg
@@ -178,9 +179,9 @@ class SimulatedBench:
         The loop switch; change it through :meth:`set_loop_closed`.
     """
 
-    def __init__(self, dut: DUTModel | str, impairments: Impairments | None = None, *,
+    def __init__(self, dut: DUTModel | str | Path, impairments: Impairments | None = None, *,
                  seed: int | None = None, clock: Callable[[], float] = time.monotonic) -> None:
-        self.dut = load_dut(dut) if isinstance(dut, str) else dut
+        self.dut = dut if isinstance(dut, DUTModel) else load_dut(dut)
         self.impairments = impairments if impairments is not None else Impairments()
         if self.impairments.adc_bits not in (0, 8, 10, 12, 14, 16):
             raise InputError(f"adc_bits must be 8, 10, 12, 14, 16 or 0 (ideal), "

@@ -8,9 +8,9 @@ import control
 import numpy as np
 import pytest
 import scipy.signal
-from mock_instruments.duts import DUTS, load_dut, model_list
 
 from loopwright.errors import InputError
+from mock_instruments.duts import DUTS, load_dut, model_list
 
 DUT_FILES = Path(__file__).resolve().parents[1] / "mock_instruments" / "dut_files"
 ALL_MODELS = ["rational", "lc_oscillator", "wien", "phase_shift", "buck_injection",
