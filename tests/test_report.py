@@ -27,6 +27,7 @@ from scipy import signal
 
 from loopwright.analysis import FrequencyResponse, analyze_loop
 from loopwright.cli import main
+from loopwright.procedure.schema import Limit, evaluate_limits
 from loopwright.report import palette, render_report
 from loopwright.report.compare import FIGURES, render_comparison
 from loopwright.report.export import export_run
@@ -113,21 +114,10 @@ def write_run(
             ])
     response = FrequencyResponse(frequency_hz, h, gain_db_std, phase_deg_std)
     analysis = analyze_loop(response).to_dict()
-    checked = []
-    for limit in limits:
-        value = analysis.get(limit["figure"])
-        lo, hi = limit.get("min"), limit.get("max")
-        passed = value is not None and (lo is None or value >= lo) and (hi is None or value <= hi)
-        margins = [m for m in ((value - lo) if lo is not None and value is not None else None,
-                               (hi - value) if hi is not None and value is not None else None)
-                   if m is not None]
-        checked.append({**limit, "value": value, "passed": passed,
-                        "margin": min(margins) if margins else None})
     summary = {
         "analysis": analysis,
-        "limits": checked,
-        "verdict": ("none" if not checked else
-                    "pass" if all(c["passed"] for c in checked) else "fail"),
+        "limits": [],
+        "verdict": "none",
         "closed_loop": None,
         "points": int(frequency_hz.size),
         "flagged_points": len(flags),
@@ -147,6 +137,9 @@ def write_run(
             "predicted_frequency_hz": predicted,
             "frequency_error_pct": 100 * (running_hz - predicted) / predicted,
         }
+    # The project's own limit evaluation (procedure.schema), as the runner does it.
+    summary["limits"], summary["verdict"] = evaluate_limits(
+        [Limit(**limit) for limit in limits], analysis, summary["closed_loop"])
     if calibration:
         cal_f = np.logspace(math.log10(start_hz), math.log10(stop_hz), 12)
         mismatch = (1 + 0.004 * np.log10(cal_f / start_hz)) * np.exp(
@@ -180,15 +173,16 @@ def write_run(
 
 
 AMPLIFIER_LIMITS = [
-    {"name": "phase margin", "figure": "phase_margin_deg", "min": 45.0, "max": None,
-     "unit": "deg"},
-    {"name": "gain margin", "figure": "gain_margin_db", "min": 6.0, "max": None, "unit": "dB"},
+    {"name": "phase margin", "figure": "phase_margin_deg", "min": 45.0},
+    {"name": "gain margin", "figure": "gain_margin_db", "min": 6.0},
+    {"name": "crossover", "figure": "crossover_frequency_hz", "min": 20e3, "max": 30e3},
 ]
 OSCILLATOR_LIMITS = [
-    {"name": "start-up excess gain", "figure": "excess_gain", "min": 1.15, "max": None,
-     "unit": ""},
+    {"name": "start-up excess gain", "figure": "excess_gain", "min": 1.15},
     {"name": "oscillation frequency", "figure": "oscillation_frequency_hz", "min": 140e3,
-     "max": 160e3, "unit": "Hz"},
+     "max": 160e3},
+    {"name": "running frequency", "figure": "closed_loop_frequency_hz", "min": 148e3,
+     "max": 151e3},
 ]
 
 
@@ -277,7 +271,7 @@ def test_html_holds_the_summary_figures(amplifier_run, amplifier_report):
     crossover = analysis["gain_crossovers"][0]["frequency_hz"]
     assert f"{crossover / 1e3:.4f} kHz" in text  # 6 significant digits
     assert "FAIL" in text  # phase margin 27 deg < 45 deg
-    assert "1 of 2 limit(s) not met" in text
+    assert "1 of 3 limit(s) not met" in text
 
 
 def test_html_escapes_user_strings(amplifier_report):

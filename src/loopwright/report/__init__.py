@@ -51,7 +51,7 @@ def render_report_input(data: ReportInput) -> ReportFiles:
     closed_loop_svg = None
     if data.closed_loop_time_s is not None:
         fig = evidence.closed_loop_figure(data.closed_loop_time_s, data.closed_loop_response_v,
-                                          summary.get("closed_loop"))
+                                          summary.get("closed_loop"), limits)
         closed_loop_svg = bode.svg_text(fig, "closed-")
     calibration_svg = None
     if data.calibration is not None:

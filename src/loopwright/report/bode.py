@@ -174,6 +174,8 @@ def draw_limit_masks(
       (and below ``-max`` dB), since the gain margin is -|H| in dB there.
     - ``excess_gain`` / ``loop_gain``: near each 0° crossing, the gain below
       20·log10(min) (and above 20·log10(max)).
+    - ``resonance_peak_db``: near each resonance, the gain above ``max`` (below ``min``).
+    - ``closed_loop_*``: nothing here (the closed-loop figure shows them).
     - a frequency of a 0° crossing (``oscillation_frequency_hz``,
       ``gain_margin_frequency_hz``): a band around 0° outside [min, max]; of a gain
       crossover: a band around 0 dB; any other figure in Hz: full height.
@@ -183,6 +185,8 @@ def draw_limit_masks(
                   if is_number(c.get("frequency_hz"))]
     zero_phase = [z["frequency_hz"] for z in analysis.get("zero_phase_crossings") or []
                   if is_number(z.get("frequency_hz"))]
+    resonances = [r["frequency_hz"] for r in analysis.get("resonances") or []
+                  if is_number(r.get("frequency_hz"))]
     g_low, g_high = ax_gain.get_ylim()
     x_low, x_high = ax_gain.get_xlim()
     shaded = False
@@ -215,6 +219,16 @@ def draw_limit_masks(
                 if hi is not None and hi > 0:
                     _shade(ax_gain, x0, x1, 20.0 * math.log10(hi), g_high)
                 shaded = shaded or bool(zero_phase)
+        elif figure == "resonance_peak_db":
+            for f in resonances:
+                x0, x1 = _mask_span(f)
+                if hi is not None:
+                    _shade(ax_gain, x0, x1, hi, g_high)
+                if lo is not None:
+                    _shade(ax_gain, x0, x1, g_low, lo)
+                shaded = True
+        elif figure.startswith("closed_loop_"):
+            continue  # shown on the closed-loop figure, not on the open-loop sweep
         elif figure.endswith("_hz"):
             # Where the figure is a 0 deg crossing, the phase trace must cross 0 deg
             # inside [min, max]: shade a band around 0 deg outside it. Where it is a

@@ -50,11 +50,12 @@ def closed_loop_figure(
     time_s: np.ndarray,
     response_v: np.ndarray,
     closed_loop: dict | None,
+    limits: list[dict] | tuple = (),
 ) -> Figure:
     """Waveform (a few cycles) and spectrum of the free-running loop.
 
     The measured frequency (solid) and the open-loop prediction (dashed) are marked on
-    the spectrum.
+    the zoom; a ``closed_loop_frequency_hz`` limit hatches the frequencies outside it.
     """
     closed_loop = closed_loop or {}
     freq_hz, level_dbc = spectrum_dbc(time_s, response_v)
@@ -107,6 +108,15 @@ def closed_loop_figure(
     if is_number(predicted_hz):
         ax_zoom.axvline(predicted_hz, color=palette.BLUE, linewidth=1.4, linestyle="--",
                         label=f"open loop {engineering(predicted_hz, 'Hz', 6)}")
+    for limit in limits:
+        if limit.get("figure") != "closed_loop_frequency_hz":
+            continue
+        for bound, side in ((limit.get("min"), -1), (limit.get("max"), 1)):
+            if is_number(bound):
+                edge = measured_hz + side * 10 * half
+                ax_zoom.axvspan(min(bound, edge), max(bound, edge), facecolor=palette.MASK_FILL,
+                                edgecolor=palette.MASK_EDGE, hatch=palette.MASK_HATCH,
+                                alpha=0.85, zorder=0.5, label=None)
     ax_zoom.set_xlim(measured_hz - half, measured_hz + half)
     ax_zoom.set_ylim(-60.0, 5.0)
     ax_zoom.xaxis.set_major_formatter(EngFormatter(unit="Hz", places=1))
