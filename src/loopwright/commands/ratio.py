@@ -3,7 +3,7 @@
 CAPTURE is a two-channel record saved from any scope:
 
 - CSV with the header ``time_s,reference_v,response_v``, or the same three columns
-  without a header;
+  without a header; lines starting with ``#`` are comments;
 - ``.npz`` with ``time_s``, ``reference_v``, ``response_v``, or with ``reference_v``,
   ``response_v`` and a scalar ``sample_rate_hz``.
 
@@ -126,7 +126,8 @@ def _load_csv(path: Path) -> TwoChannelRecord:
         text = path.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(f"cannot read the capture as text: {exc}", path=path) from exc
-    lines = text.splitlines()
+    # lines starting with '#' are comments (a note on where the capture came from)
+    lines = ["" if line.lstrip().startswith("#") else line for line in text.splitlines()]
     first = next((i for i, line in enumerate(lines) if line.strip()), None)
     if first is None:
         raise InputError("the capture file has no data", path=path)
