@@ -35,12 +35,16 @@ MIN_SEGMENT_CYCLES = 2.0
 
 def _segment_phasors(y: NDArray[np.float64], n_seg: int, seg_len: int, window: NDArray,
                      thetas: NDArray) -> tuple[NDArray, float]:
-    """Per-segment windowed DTFTs ``(n_seg, H)`` (mean removed) and the mean."""
-    used = y[: n_seg * seg_len]
-    offset = float(used.mean())
-    z = (used.reshape(n_seg, seg_len) - offset) * window
+    """Per-segment windowed DTFTs ``(n_seg, H)`` and the offset.
+
+    Each segment loses its window-weighted mean first, which keeps a DC offset from
+    leaking into the fundamental of short segments.
+    """
+    seg = y[: n_seg * seg_len].reshape(n_seg, seg_len)
+    means = (seg @ window) / float(window.sum())
+    z = (seg - means[:, None]) * window
     x, _ = data_sums(z, thetas)
-    return x, offset
+    return x, float(means.mean())
 
 
 @register_estimator("xcorr")
