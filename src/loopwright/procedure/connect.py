@@ -52,15 +52,28 @@ class BenchConnection:
         return GeneratorCaps(max_amplitude_vpp=self.bench.max_amplitude_vpp,
                              max_frequency_hz=self.bench.max_frequency_hz)
 
+    def reopen(self, role: str) -> Any:
+        """Drop one instrument's session and open it afresh (after a lost connection).
+
+        The old session is closed without its teardown (a dead socket would only time
+        out); the new one runs the driver's init again and is checked with ``*IDN?``.
+        """
+        old = getattr(self, role)
+        session = getattr(old, "session", None)
+        if session is not None:
+            with contextlib.suppress(LoopwrightError, OSError):
+                session.close_resource()
+        instrument = open_instrument(
+            self.resources[role], role, driver=self.instruments[role]["driver"],
+            backend=self.backend, timeout_s=self.bench.timeout_s, traffic_log=self.traffic,
+            extra_driver_dirs=self.extra_driver_dirs,
+            caps=self.caps() if role == "generator" else None)
+        setattr(self, role, instrument)
+        return instrument
+
     def reopen_generator(self) -> Generator:
-        """Open the generator afresh (after a lost connection)."""
-        entry = self.bench.generator
-        driver = entry.driver if entry is not None else None
-        self.generator = open_instrument(
-            self.resources["generator"], "generator", driver=driver, backend=self.backend,
-            timeout_s=self.bench.timeout_s, traffic_log=self.traffic,
-            extra_driver_dirs=self.extra_driver_dirs, caps=self.caps())
-        return self.generator
+        """Open the generator afresh (used by the output-off guard)."""
+        return self.reopen("generator")
 
     def close(self) -> None:
         """Close every instrument (teardown: generator output off first), then the server."""

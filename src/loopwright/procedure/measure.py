@@ -114,6 +114,12 @@ class PointMeasurer:
         for channel in self.channels:
             self.scope.set_channel(channel, self.settings[channel])
 
+    def rebind(self, scope: Scope) -> None:
+        """Use a reopened scope and put the channels' settings back on it."""
+        self.scope = scope
+        for channel in self.channels:
+            self.scope.set_channel(channel, self.settings[channel])
+
     def _apply(self, channel: int, settings: ChannelSettings) -> bool:
         """Set a channel; False when the scope refuses the scale (end of its range)."""
         try:

@@ -30,6 +30,7 @@ from loopwright.errors import (
     LoopwrightError,
     RunError,
     SafetyError,
+    SCPIError,
 )
 from loopwright.instruments.roles import ChannelSettings
 from loopwright.procedure.connect import BenchConnection, connect_bench
@@ -57,6 +58,9 @@ from loopwright.procedure.schema import (
 )
 from loopwright.store.load import mismatch_at, read_calibration
 from loopwright.store.writer import CALIBRATION_FILE, RunFolder
+
+#: Attempts at one point after an instrument error (each after a reconnect).
+MAX_POINT_RETRIES = 2
 
 SAFETY_NOTE = (
     "Loop injection puts a generator into a live feedback loop. Use isolated injection "
@@ -162,6 +166,7 @@ class Runner:
         self.reference_channel = channels.reference
         self.response_channel = channels.response
         self.measurer: PointMeasurer | None = None
+        self.recoveries: list[dict[str, Any]] = []
 
     # ------------------------------------------------------------------ top level
 
@@ -250,6 +255,45 @@ class Runner:
             keep_captures=bool(getattr(step, "keep_captures", False)),
         )
 
+    def _retrying(self, action: Callable[[], PointResult], frequency_hz: float) -> PointResult:
+        """Run ``action``; after an instrument error reconnect, restore the set-up, retry.
+
+        SCPI errors (the instrument refused something) are retried without a
+        reconnect. After :data:`MAX_POINT_RETRIES` retries the error goes up and the run
+        stops with it as the reason; the points measured so far stay on disk.
+        """
+        for attempt in range(MAX_POINT_RETRIES + 1):
+            try:
+                return action()
+            except InstrumentError as exc:
+                record = {"frequency_hz": frequency_hz, "attempt": attempt + 1,
+                          "error": f"{type(exc).__name__}: {exc}",
+                          "action": "gave up" if attempt == MAX_POINT_RETRIES else "retry"}
+                if attempt < MAX_POINT_RETRIES and not isinstance(exc, SCPIError):
+                    record["action"] = "reconnect and retry"
+                self.recoveries.append(record)
+                if attempt == MAX_POINT_RETRIES:
+                    raise
+                self.progress.warn(f"{format_frequency(frequency_hz)}: {exc};"
+                                   f" {record['action']}")
+                if not isinstance(exc, SCPIError):
+                    self._reconnect()
+        raise AssertionError("unreachable")
+
+    def _reconnect(self) -> None:
+        """Reopen generator and scope, then put back what the runner had set."""
+        for role in ("scope", "generator"):
+            try:
+                self.conn.reopen(role)
+            except InstrumentError as exc:
+                self.progress.warn(f"reconnecting the {role} failed: {exc}")
+        self._generator_frequency_hz = None
+        self._generator_amplitude_vpp = None
+        self._timebase = None
+        if self.measurer is not None:
+            self.measurer.rebind(self.conn.scope)
+            self.conn.scope.set_trigger(self.reference_channel, 0.0, "rise")
+
     def _store(self, step_index: int, nominal_hz: float, amplitude_vpp: float,
                result: PointResult, refined: bool) -> complex:
         """Append one point; returns the stored (signed) H."""
@@ -317,7 +361,8 @@ class Runner:
                      measured_f: list[float], measured_h: list[complex]) -> None:
         amplitude_vpp = amplitude_at(step, frequency_hz, self.bench.max_amplitude_vpp)
         try:
-            result = self._measure_at(step, frequency_hz, calibrating=False)
+            result = self._retrying(
+                lambda: self._measure_at(step, frequency_hz, calibrating=False), frequency_hz)
         except EstimationError as exc:
             # the point cannot be estimated (e.g. a flat reference): record why, go on
             self.progress.warn(f"{format_frequency(frequency_hz)}: {exc}")
@@ -350,7 +395,9 @@ class Runner:
         self.progress.start_step(step.label or "channel calibration", len(plan))
         mismatch = []
         for frequency_hz in plan:
-            result = self._measure_at(step, float(frequency_hz), calibrating=True)
+            result = self._retrying(
+                lambda f=float(frequency_hz): self._measure_at(step, f, calibrating=True),
+                float(frequency_hz))
             mismatch.append(result.gain)
             self.progress.point(-1, float(frequency_hz), result.gain_db, result.phase_deg,
                                 result.flags)
@@ -556,7 +603,8 @@ def run_procedure(procedure_path: str | Path, bench_path: str | Path,
             raise
         folder.update_manifest(status="running", instruments=connection.instruments,
                                simulated=connection.simulated)
-        guard = OutputGuard(connection.generator, connection.reopen_generator)
+        guard = OutputGuard(lambda: connection.generator, connection.reopen_generator)
+        runner = None
         try:
             with guard:
                 runner = Runner(procedure, bench, connection, folder, console, options)
@@ -579,7 +627,8 @@ def run_procedure(procedure_path: str | Path, bench_path: str | Path,
             output_off = guard.output_off_confirmed
             if status != "complete" and reason is None:
                 reason = "unknown"
-        folder.update_manifest(output_off_confirmed=output_off)
+        folder.update_manifest(output_off_confirmed=output_off,
+                               recoveries=runner.recoveries if runner is not None else [])
         folder.finish(status, reason)
         connection.close()
     if status == "complete" and options.render_report:

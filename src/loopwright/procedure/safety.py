@@ -30,15 +30,16 @@ class OutputGuard:
 
     Parameters
     ----------
-    generator
-        The generator role in use.
+    current
+        Returns the generator role in use now (it changes when a lost connection is
+        reopened during the run).
     reopen
         Opens the generator afresh (used when the connection is lost); optional.
     """
 
-    def __init__(self, generator: Generator,
+    def __init__(self, current: Callable[[], Generator],
                  reopen: Callable[[], Generator] | None = None) -> None:
-        self.generator = generator
+        self.current = current
         self.reopen = reopen
         self.output_off_confirmed = False
         self._saved: dict[int, object] = {}
@@ -69,15 +70,16 @@ class OutputGuard:
 
     def switch_off(self) -> bool:
         """Output off, reopening the generator once if needed; True when confirmed."""
+        generator = self.current()
         for attempt in range(2):
             try:
-                self.generator.set_output(False)
-                return not self.generator.read_settings().output_on
+                generator.set_output(False)
+                return not generator.read_settings().output_on
             except (LoopwrightError, OSError) as exc:
                 log.warning("switching the generator output off failed (%s)", exc)
                 if attempt == 0 and self.reopen is not None:
                     try:
-                        self.generator = self.reopen()
+                        generator = self.reopen()
                     except (LoopwrightError, OSError) as reopen_exc:
                         log.error("could not reopen the generator: %s", reopen_exc)
                         return False
