@@ -500,6 +500,18 @@ def test_report_cli_rerenders_from_folder_alone(oscillator_run, tmp_path, capsys
     assert "report.html" in capsys.readouterr().out
 
 
+def test_report_of_a_run_without_summary(amplifier_run, tmp_path):
+    # An aborted run may end before summary.json: the report still shows its points.
+    run = tmp_path / "aborted"
+    shutil.copytree(amplifier_run, run)
+    (run / "summary.json").unlink()
+    files = render_report(run)
+    text = files.html.read_text(encoding="utf-8")
+    parse_strict(text)
+    assert "NO LIMITS CHECKED" in text and "No analysis in summary.json" in text
+    assert text.count('class="flagged"') == 3
+
+
 @pytest.mark.parametrize("breakage, expected", [
     ("not_a_folder", "not a folder"),
     ("no_manifest", "no manifest.json"),

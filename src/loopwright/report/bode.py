@@ -33,8 +33,10 @@ from matplotlib.transforms import offset_copy
 from loopwright.report import palette
 from loopwright.report.formatting import engineering, is_number
 
-#: Half width of a limit mask (a "gate") around a crossing, in decades (±12 %).
-MASK_HALF_WIDTH_DECADES = 0.05
+#: Half width of a limit mask (a "gate") around a crossing: this share of the
+#: frequency axis's width in decades, but at least MASK_MIN_HALF_WIDTH_DECADES.
+MASK_HALF_WIDTH_SHARE = 0.02
+MASK_MIN_HALF_WIDTH_DECADES = 0.005
 #: Half height of a frequency limit's band around 0 dB or 0 deg.
 FREQUENCY_MASK_HALF_DB = 3.0
 FREQUENCY_MASK_HALF_DEG = 20.0
@@ -75,23 +77,36 @@ def wrap_breaks(frequency_hz: np.ndarray, phase_deg: np.ndarray) -> tuple[np.nda
     )
 
 
-def _minor_label(value: float, _pos: int) -> str:
-    """Label the 2x and 5x minor ticks (for spans under two decades)."""
-    mantissa = value / 10.0 ** math.floor(math.log10(value) + 1e-9)
-    if any(abs(mantissa - m) < 1e-6 for m in (2.0, 5.0)):
-        return _ENG(value)
-    return ""
+def _minor_labeller(mantissas: tuple[float, ...]) -> FuncFormatter:
+    """A formatter that labels only the minor ticks at the given mantissas."""
+
+    def label(value: float, _pos: int) -> str:
+        mantissa = value / 10.0 ** math.floor(math.log10(value) + 1e-9)
+        if any(abs(mantissa - m) < 1e-6 for m in mantissas):
+            return _ENG(value)
+        return ""
+
+    return FuncFormatter(label)
 
 
 _ENG = EngFormatter(unit="Hz", places=0)
 
 
 def _label_minor_ticks(*axes) -> None:
-    """Under two decades the major ticks are too few: label the 2x and 5x ticks too."""
+    """Under two decades the major ticks are too few: label the 2x and 5x minor ticks,
+    and under 0.8 decade the 2x..9x ones (8x and 9x skipped, they crowd the next 1x)."""
     low, high = axes[0].get_xlim()
-    if low > 0 and math.log10(high / low) < 2.0:
-        for ax in axes:
-            ax.xaxis.set_minor_formatter(FuncFormatter(_minor_label))
+    if low <= 0:
+        return
+    span = math.log10(high / low)
+    if span < 0.8:
+        mantissas = (2.0, 3.0, 4.0, 5.0, 6.0, 7.0)
+    elif span < 2.0:
+        mantissas = (2.0, 5.0)
+    else:
+        return
+    for ax in axes:
+        ax.xaxis.set_minor_formatter(_minor_labeller(mantissas))
 
 
 def _frequency_axis(ax) -> None:
@@ -142,8 +157,9 @@ def _column(points: pd.DataFrame, name: str) -> np.ndarray | None:
     return values if np.isfinite(values).any() else None
 
 
-def _mask_span(frequency_hz: float) -> tuple[float, float]:
-    factor = 10.0**MASK_HALF_WIDTH_DECADES
+def _mask_span(frequency_hz: float, axis_decades: float) -> tuple[float, float]:
+    half = max(MASK_MIN_HALF_WIDTH_DECADES, MASK_HALF_WIDTH_SHARE * axis_decades)
+    factor = 10.0**half
     return frequency_hz / factor, frequency_hz * factor
 
 
@@ -189,6 +205,7 @@ def draw_limit_masks(
                   if is_number(r.get("frequency_hz"))]
     g_low, g_high = ax_gain.get_ylim()
     x_low, x_high = ax_gain.get_xlim()
+    decades = math.log10(x_high / x_low) if x_low > 0 and x_high > x_low else 1.0
     shaded = False
     for limit in limits:
         figure = str(limit.get("figure") or limit.get("name") or "")
@@ -197,7 +214,7 @@ def draw_limit_masks(
         hi = float(hi) if is_number(hi) else None
         if figure == "phase_margin_deg":
             for f in crossovers:
-                x0, x1 = _mask_span(f)
+                x0, x1 = _mask_span(f, decades)
                 if lo is not None:
                     _shade(ax_phase, x0, x1, -180.0, lo)
                 if hi is not None:
@@ -205,7 +222,7 @@ def draw_limit_masks(
                 shaded = shaded or bool(crossovers)
         elif figure == "gain_margin_db":
             for f in zero_phase:
-                x0, x1 = _mask_span(f)
+                x0, x1 = _mask_span(f, decades)
                 if lo is not None:
                     _shade(ax_gain, x0, x1, -lo, g_high)
                 if hi is not None:
@@ -213,7 +230,7 @@ def draw_limit_masks(
                 shaded = shaded or bool(zero_phase)
         elif figure in ("excess_gain", "loop_gain"):
             for f in zero_phase:
-                x0, x1 = _mask_span(f)
+                x0, x1 = _mask_span(f, decades)
                 if lo is not None and lo > 0:
                     _shade(ax_gain, x0, x1, g_low, 20.0 * math.log10(lo))
                 if hi is not None and hi > 0:
@@ -221,7 +238,7 @@ def draw_limit_masks(
                 shaded = shaded or bool(zero_phase)
         elif figure == "resonance_peak_db":
             for f in resonances:
-                x0, x1 = _mask_span(f)
+                x0, x1 = _mask_span(f, decades)
                 if hi is not None:
                     _shade(ax_gain, x0, x1, hi, g_high)
                 if lo is not None:
