@@ -18,6 +18,7 @@ between steps come from cubic Hermite interpolation (values and slopes at the st
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import scipy.linalg
@@ -27,6 +28,9 @@ from mock_instruments.duts.base import LoopSystem
 
 #: Most integration steps one acquisition may take (beyond: ask for a shorter record).
 MAX_STEPS = 4_000_000
+#: Soft limit (stage-output units) given to a linear stage whose closed loop is unstable:
+#: a real amplifier meets its supply rail; without one the record would overflow.
+RAIL_LIMIT = 15.0
 
 
 class ClosedLoopRun:
@@ -47,18 +51,28 @@ class ClosedLoopRun:
     max_advance_cycles
         Most periods of the slowest oscillatory mode integrated between two acquisitions;
         beyond that the loop's time jumps (a free-running loop's phase is arbitrary anyway).
+
+    Notes
+    -----
+    A linear stage (no limit) with a stable closed loop is solved exactly (the closed
+    loop's matrix exponential), so stiff loops such as the buck regulator cost nothing
+    to run; an unstable linear one gets the soft limit :data:`RAIL_LIMIT`.
     """
 
     def __init__(self, system: LoopSystem, rng: np.random.Generator, t_start_s: float, *,
                  steps_per_cycle: int = 64, start_noise_v: float = 1e-5,
                  max_advance_cycles: float = 400.0) -> None:
-        self.system = system
         net = system.network
         self._A = net.A
         self._B = net.B
         self._C = net.C
         closed = net.A + system.gain * np.outer(net.B, net.C)
         closed_eigs = np.linalg.eigvals(closed)
+        self.exact = system.limit is None and bool(np.all(closed_eigs.real < 0))
+        if system.limit is None and not self.exact:
+            system = replace(system, limit=RAIL_LIMIT)
+        self.system = system
+        self._closed = closed
         fastest = float(np.max(np.abs(closed_eigs))) if closed_eigs.size else 1.0
         self.step_s = 2 * np.pi / (steps_per_cycle * fastest)
         oscillatory = np.abs(closed_eigs.imag[np.abs(closed_eigs.imag) > 0])
@@ -142,6 +156,10 @@ class ClosedLoopRun:
         gap = t_s - self.t_s
         if gap <= 0:
             return
+        if self.exact:
+            self.x = scipy.linalg.expm(self._closed * gap) @ self.x
+            self.t_s = float(t_s)
+            return
         span = min(gap, self.max_advance_s)
         count = int(np.ceil(span / self.step_s))
         self.x = self._steps(self.x, count, self.step_s)[0][-1]
@@ -156,6 +174,8 @@ class ClosedLoopRun:
         t_min = min(float(t.min()) for t in times_s)
         t_max = max(float(t.max()) for t in times_s)
         self.advance_to(t_min)
+        if self.exact:
+            return self._sample_exact(times_s, t_max)
         span = t_max - self.t_s
         count = max(1, int(np.ceil(span / self.step_s)))
         if count > MAX_STEPS:
@@ -170,6 +190,33 @@ class ClosedLoopRun:
         self.x = states[-1]
         self.t_s = float(grid_t[-1])
         return [_hermite(grid_t, values, slopes, t) for t in times_s]
+
+
+    def _sample_exact(self, times_s: list[np.ndarray], t_max: float) -> list[np.ndarray]:
+        """Stable linear loop: ``C expm(A_cl (t - t0)) x`` at every time."""
+        out = [_modal(self._closed, self._C, self.x, t - self.t_s) for t in times_s]
+        self.x = scipy.linalg.expm(self._closed * (t_max - self.t_s)) @ self.x
+        self.t_s = float(t_max)
+        return out
+
+
+def _modal(a: np.ndarray, c: np.ndarray, x0: np.ndarray, dt: np.ndarray) -> np.ndarray:
+    """``c expm(a dt) x0`` for many ``dt``: modal sum, or stepping when not diagonalisable."""
+    eigvals, vecs = np.linalg.eig(a)
+    if np.linalg.cond(vecs) < 1e8:
+        weights = (c @ vecs) * np.linalg.solve(vecs, x0.astype(complex))
+        return (np.exp(np.multiply.outer(dt, eigvals)) @ weights).real
+    # Uniform grid (a record): step with one matrix exponential.
+    order = np.argsort(dt)
+    out = np.empty(dt.shape)
+    x = scipy.linalg.expm(a * dt[order[0]]) @ x0
+    prev = dt[order[0]]
+    for i in order:
+        if dt[i] != prev:
+            x = scipy.linalg.expm(a * (dt[i] - prev)) @ x
+            prev = dt[i]
+        out[i] = c @ x
+    return out
 
 
 def _hermite(grid_t: np.ndarray, values: np.ndarray, slopes: np.ndarray,

@@ -194,3 +194,31 @@ def test_integrator_agrees_with_scipy_dop853(name):
     f_ours, a_ours = sine_fit(ours, f0, fs)
     assert f_ours == pytest.approx(f_ref, rel=1e-4)
     assert a_ours == pytest.approx(a_ref, rel=1e-3)
+
+
+@pytest.mark.parametrize("name", ["buck_injection", "opamp_capload", "rational"])
+def test_stable_linear_loops_close_exactly_and_settle(name):
+    # Stable linear loops are solved with the closed loop's matrix exponential: the
+    # start-up noise decays with the closed-loop poles, however stiff the loop is.
+    dut = load_dut(name)
+    clock = FakeClock()
+    bench = SimulatedBench(dut, IDEAL, seed=4, clock=clock)
+    bench.set_loop_closed(True)
+    assert bench._closed_run.exact
+    started = time.perf_counter()
+    first = np.max(np.abs(bench.acquire(1000, 1e6)[2]))
+    clock.advance(1.0)
+    later = np.max(np.abs(bench.acquire(1000, 1e6)[2]))
+    assert time.perf_counter() - started < 2.0
+    assert first > 0 and later < 1e-9 * first
+
+
+def test_unstable_linear_loop_meets_the_rail():
+    # A linear loop with |H| > 1 at 0 degrees has nothing to hold it but the rail.
+    dut = load_dut("wien", output_limit_v=None)
+    bench, clock, f0 = run_closed(dut)
+    assert not bench._closed_run.exact
+    clock.advance(300 / f0)
+    _, amplitude, _ = measure(bench, f0)
+    beta = 1 / 3                      # Wien network at f0: the rail seen through it
+    assert 0.5 * 15.0 * beta < amplitude < 1.3 * 15.0 * beta

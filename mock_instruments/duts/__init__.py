@@ -111,3 +111,7 @@ def model_list() -> list[tuple[str, str]]:
 
 __all__ = ["DUTS", "DUTModel", "DUTParams", "LoopSystem", "load_dut",
            "model_list", "register_dut"]
+
+
+# Register the shipped models now, so that DUTS is complete on import.
+_load_models()
