@@ -192,16 +192,16 @@ def build_model(frequency_hz: ArrayLike, h: ArrayLike) -> ResponseModel:
         held_out = float(np.max(np.abs(predicted - gain[~keep]) / np.abs(gain[~keep])))
         if not np.isfinite(held_out):
             held_out = float("inf")
+        if held_out > HELD_OUT_TOLERANCE:
+            return _pchip(
+                f, gain,
+                f"rational fit missed held-out points by {held_out:.2g} (relative): "
+                "noisy or not rational",
+                held_out,
+            )
         full = _fit_rational(z, flat)
     except (np.linalg.LinAlgError, ValueError, ZeroDivisionError) as exc:
         return _pchip(f, gain, f"rational fit failed ({exc})", float("nan"))
-    if held_out > HELD_OUT_TOLERANCE:
-        return _pchip(
-            f, gain,
-            f"rational fit missed held-out points by {held_out:.2g} (relative): "
-            "noisy or not rational",
-            held_out,
-        )
     spurious = _spurious_poles(full, z, flat)
     if spurious:
         return _pchip(f, gain, f"rational fit has {spurious} unsupported pole(s)", held_out)
