@@ -512,6 +512,18 @@ def test_report_of_a_run_without_summary(amplifier_run, tmp_path):
     assert text.count('class="flagged"') == 3
 
 
+def test_unwritable_report_file_is_one_line(amplifier_run, tmp_path, capsys):
+    # A folder where bode.png should go: the write fails even for root.
+    run = tmp_path / "blocked"
+    shutil.copytree(amplifier_run, run)
+    (run / "bode.png").unlink(missing_ok=True)
+    (run / "bode.png").mkdir()
+    assert main(["report", str(run)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "cannot write the report" in err and "bode.png" in err
+    assert len(err.splitlines()) == 1
+
+
 @pytest.mark.parametrize("breakage, expected", [
     ("not_a_folder", "not a folder"),
     ("no_manifest", "no manifest.json"),

@@ -12,6 +12,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import NamedTuple
 
+from loopwright.errors import InputError
 from loopwright.report import bode, evidence
 from loopwright.report import html as html_report
 from loopwright.report.source import ReportInput, report_input
@@ -37,7 +38,21 @@ def _title(data: ReportInput) -> str:
 
 
 def render_report_input(data: ReportInput) -> ReportFiles:
-    """Write report.html, bode.png and bode.svg for already-read run data."""
+    """Write report.html, bode.png and bode.svg for already-read run data.
+
+    Raises
+    ------
+    InputError
+        A file cannot be written into the run folder (read-only, disk full).
+    """
+    try:
+        return _render(data)
+    except OSError as exc:
+        raise InputError(f"cannot write the report: {exc.strerror or exc}",
+                         path=exc.filename or data.path) from exc
+
+
+def _render(data: ReportInput) -> ReportFiles:
     summary = data.summary
     analysis = summary.get("analysis") or {}
     limits = summary.get("limits") or []

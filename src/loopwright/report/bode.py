@@ -18,9 +18,6 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 
 import matplotlib
-
-matplotlib.use("Agg")  # headless; must precede any backend import
-
 import numpy as np
 import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg

@@ -184,7 +184,11 @@ def render_comparison(
             title=f"Open-loop gain H of {len(runs)} runs",
             on_run=None if bar is None else (lambda _label: bar.advance(task)),
         )
-        png = bode.save_png(fig, out.with_suffix(".png"))
         text = comparison_html(runs, labels, bode.svg_text(fig, "overlay-"))
-    out.write_text(text, encoding="utf-8")
+        try:
+            png = bode.save_png(fig, out.with_suffix(".png"))
+            out.write_text(text, encoding="utf-8")
+        except OSError as exc:
+            raise InputError(f"cannot write the comparison: {exc.strerror or exc}",
+                             path=exc.filename or out) from exc
     return ComparisonFiles(html=out, png=png)

@@ -3,9 +3,6 @@
 from __future__ import annotations
 
 import matplotlib
-
-matplotlib.use("Agg")
-
 import numpy as np
 import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
