@@ -260,7 +260,8 @@ class ErrorQueue:
             text = ERROR_TEXTS.get(code, "Device-specific error")
             if detail:
                 text = f"{text}; {detail}"
-        text = text.replace('"', "'")
+        # Printable ASCII only: the text is echoed to clients, whatever they sent.
+        text = "".join(ch if " " <= ch <= "~" and ch != '"' else "?" for ch in text)
         with self._lock:
             if len(self._entries) >= self.capacity:
                 self._entries[-1] = (-350, ERROR_TEXTS[-350])

@@ -101,8 +101,13 @@ class InProcessBench:
 
     def close(self) -> None:
         """Close the resource manager (and its sessions) and forget the instruments."""
-        if self._backend is not None and self._backend.resource_manager is not None:
-            self._backend.resource_manager.close()
+        if self._backend is not None:
+            if self._backend.resource_manager is not None:
+                self._backend.resource_manager.close()
+            # Forget pyvisa's cached backend object too (one per library path).
+            highlevel.VisaLibraryBase._registry.pop(
+                (InProcessBackend, self._backend.library_path), None
+            )
         with _REGISTRY_LOCK:
             _REGISTRY.pop(self.name, None)
 

@@ -15,12 +15,14 @@ import re
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from loopwright.resources import data_dir
 from mock_instruments.bench import Impairments, SimulatedBench
 from mock_instruments.instruments import DIALECTS, make_instrument, make_instruments
 from mock_instruments.scope import BlockScope, TextScope
 from mock_instruments.scpi import ErrorQueue
-
-from loopwright.resources import data_dir
 
 
 def new_bench(**impairments: object) -> SimulatedBench:
@@ -427,3 +429,48 @@ def test_make_instruments_checks_roles() -> None:
         make_instruments(new_bench(), {"generator": "scope-text"})
     with pytest.raises(ValueError, match="unknown dialect"):
         make_instrument("scope-fancy", new_bench())
+
+
+# -- robustness ---------------------------------------------------------------------------
+
+_WORDS = [
+    "SOUR1",
+    "FREQ",
+    "VOLT",
+    "OUTP",
+    "CH1",
+    "CHAN2",
+    "INP1",
+    "TIM",
+    "ACQ",
+    "WAV",
+    "ROUT",
+    "SYST",
+    "ERR",
+    "*IDN",
+    "*RST",
+    "*OPC",
+    "1e3",
+    "-5",
+    "ON",
+    "(@1)",
+    "INT16",
+]
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    dialect=st.sampled_from(sorted(DIALECTS)),
+    line=st.one_of(
+        st.text(alphabet=st.characters(blacklist_characters="\n"), max_size=60),
+        st.lists(st.sampled_from([*_WORDS, ":", "?", ";", " ", ",", '"']), max_size=12).map(
+            "".join
+        ),
+    ),
+)
+def test_any_line_gives_a_reply_or_an_error_never_an_exception(dialect: str, line: str) -> None:
+    instrument = make_instrument(dialect, new_bench())
+    reply = instrument.handle(line)
+    assert reply is None or reply.endswith(b"\n")
+    for code in errors_of(instrument):
+        assert code < 0
