@@ -151,8 +151,9 @@ def test_relay_round_trip(sim_bench, opened):
     assert sim_bench.bench.loop_closed is False
 
 
-def test_drivers_work_through_the_in_process_backend(start_inprocess_bench, opened):
-    handle = start_inprocess_bench(scope="scope-text", adc_bits=0)
+@pytest.mark.parametrize("scope", SCOPES)
+def test_drivers_work_through_the_in_process_backend(start_inprocess_bench, opened, scope):
+    handle = start_inprocess_bench(scope=scope, adc_bits=0)
     gen = open_instrument(handle.resources["generator"], "generator", backend=handle.backend)
     sc = open_instrument(handle.resources["scope"], "scope", backend=handle.backend)
     opened += [gen, sc]
@@ -161,6 +162,9 @@ def test_drivers_work_through_the_in_process_backend(start_inprocess_bench, open
     assert sc.set_timebase(1000, 1e6) == 1e6
     capture = sc.acquire([1, 2])
     assert capture.record_length == 1000
+    record = handle.instruments["scope"].record
+    # within half an int16 step of the default 1 V/div screen (text: 8 digits)
+    np.testing.assert_allclose(capture.volts[2], record.volts[2], rtol=1e-7, atol=4 / 65536)
     assert handle.bench.generator.frequency_hz == 2000.0
 
 
