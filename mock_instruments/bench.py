@@ -220,13 +220,17 @@ class SimulatedBench:
         Raises
         ------
         InputError
-            For an unknown field name.
+            For an unknown field name or a shape other than ``"sine"``.
         """
         names = {f.name for f in fields(GeneratorState)}
         unknown = set(changes) - names
         if unknown:
             raise InputError(f"unknown generator field(s) {sorted(unknown)}; "
                              f"known: {sorted(names)}")
+        if changes.get("shape", "sine") != "sine":
+            # Loop-gain measurement uses a sine; the physics computes nothing else.
+            raise InputError(f"the simulated generator makes only 'sine', not "
+                             f"{changes['shape']!r}")
         with self._lock:
             new = replace(self.generator, **changes)
             if new == self.generator:

@@ -297,6 +297,8 @@ def test_bad_arguments_raise_our_error():
     bench = SimulatedBench("wien", IDEAL, clock=FakeClock())
     with pytest.raises(InputError):
         bench.apply_generator(frequency=5.0)
+    with pytest.raises(InputError, match="only 'sine'"):
+        bench.apply_generator(shape="square")
     with pytest.raises(InputError):
         bench.acquire(1, 1e3)
     with pytest.raises(InputError):
