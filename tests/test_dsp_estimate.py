@@ -218,3 +218,41 @@ def test_no_tone_near_the_nominal_frequency_is_refused_or_reported():
         assert "1000 Hz" in str(exc)
     else:
         assert p.reference.snr_db < 0
+
+
+@pytest.mark.parametrize(
+    ("n_samples", "cycles"), [(16, 2.0), (64, 2.0), (1000, 2.01), (1000, 497.5), (3001, 1234.56)]
+)
+def test_edge_records_sine_fit_exact(n_samples, cycles):
+    # shortest records, exactly two cycles, a stimulus close to Nyquist: the IEEE Std 1057
+    # fit stays exact on noise-free data
+    f = cycles * FS / n_samples
+    ref = _tone(f, n_samples, 1.0, 1.0, 0.5)
+    resp = _tone(f, n_samples, 0.3, 0.2, -1.0)
+    p = estimate_point(ref, resp, FS, f)
+    assert p.gain_db == pytest.approx(20 * math.log10(0.3), abs=1e-9)
+    assert p.phase_deg == pytest.approx(math.degrees(-0.8), abs=1e-8)
+
+
+@pytest.mark.parametrize("method", ["dft", "xcorr"])
+def test_windowed_estimators_near_nyquist(method):
+    # 0.4975 cycles/sample: segments must keep the image of the tone out of the main lobe
+    n_samples = 1000
+    f = 0.4975 * FS
+    ref = _tone(f, n_samples, 1.0, 1.0, 0.5)
+    resp = _tone(f, n_samples, 0.3, 0.2, -1.0)
+    p = estimate_point(ref, resp, FS, f, method=method)
+    assert p.gain_db == pytest.approx(20 * math.log10(0.3), abs=1e-6)
+    assert p.phase_deg == pytest.approx(math.degrees(-0.8), abs=1e-5)
+
+
+@pytest.mark.slow
+def test_ten_million_samples():
+    n_samples, f = 10_000_000, 1234.5678
+    g = 0.7 * np.exp(1j * 0.3)
+    rng = np.random.default_rng(4)
+    ref = _tone(f * (1 + 2e-4), n_samples, 1.0, 0.0) + 1e-3 * rng.standard_normal(n_samples)
+    resp = _tone(f * (1 + 2e-4), n_samples, abs(g), np.angle(g))
+    p = estimate_point(ref, resp, FS, f)
+    assert p.gain == pytest.approx(complex(g), abs=1e-5)
+    assert p.frequency_hz == pytest.approx(f * (1 + 2e-4), rel=1e-9)

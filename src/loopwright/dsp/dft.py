@@ -25,10 +25,9 @@ __all__ = ["estimate_dft", "windowed_channel"]
 
 def windowed_channel(
     y: NDArray[np.float64],
-    window: NDArray[np.float64],
+    window_name: str,
     theta: float,
     n_harm: int,
-    half_width: int,
 ) -> tuple[ChannelEstimate, complex, float]:
     """Channel figures from the windowed DTFT; also the phasor and the noise variance.
 
@@ -36,14 +35,14 @@ def windowed_channel(
     (median of the periodogram away from DC and the tones), or, for records too short
     for that, from the variance left after the tones.
     """
+    window = make_window(window_name, y.size)
     sw = float(window.sum())
     offset = float(window @ y) / sw
     z = (y - offset) * window
     x, _ = data_sums(z, theta * np.arange(1, n_harm + 1))
     phasors = 2.0 * x / sw  # A exp(j phase) per harmonic
     amps = np.abs(phasors)
-    cycles = theta * y.size / (2 * math.pi)
-    noise_var = spectral_noise_var(y, window, cycles * np.arange(1, n_harm + 1), half_width)
+    noise_var = spectral_noise_var(y, window_name, theta, n_harm)
     if not math.isfinite(noise_var):
         noise_var = max(float(np.mean((y - offset) ** 2)) - float(np.sum(amps**2)) / 2.0, 0.0)
     channel = ChannelEstimate(
@@ -108,9 +107,8 @@ def estimate_dft(
     theta = 2 * math.pi * frequency_hz / sample_rate_hz
     n_harm = harmonic_count(theta, n, harmonics)
     w = make_window(window, n)
-    half_width = WINDOWS[window][1]
-    ref, x_ref, nv_ref = windowed_channel(reference_v, w, theta, n_harm, half_width)
-    resp, x_resp, nv_resp = windowed_channel(response_v, w, theta, n_harm, half_width)
+    ref, x_ref, nv_ref = windowed_channel(reference_v, window, theta, n_harm)
+    resp, x_resp, nv_resp = windowed_channel(response_v, window, theta, n_harm)
     if x_ref == 0:
         raise EstimationError(
             f"the reference has no component at {frequency_hz:g} Hz: check the stimulus"

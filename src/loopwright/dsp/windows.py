@@ -7,6 +7,7 @@ Window names of our own map to :func:`scipy.signal.windows.get_window` (periodic
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -29,13 +30,18 @@ WINDOWS: dict[str, tuple[str, int]] = {
 
 
 def make_window(name: str, n_samples: int) -> NDArray[np.float64]:
-    """The periodic window ``name`` of length ``n_samples``."""
-    try:
-        scipy_name, _ = WINDOWS[name]
-    except KeyError:
+    """The periodic window ``name`` of length ``n_samples`` (read-only, cached)."""
+    if name not in WINDOWS:
         choices = ", ".join(WINDOWS)
-        raise EstimationError(f"unknown window {name!r}; choose one of: {choices}") from None
-    return scipy.signal.windows.get_window(scipy_name, n_samples, fftbins=True)
+        raise EstimationError(f"unknown window {name!r}; choose one of: {choices}")
+    return _cached_window(name, int(n_samples))
+
+
+@functools.lru_cache(maxsize=16)
+def _cached_window(name: str, n_samples: int) -> NDArray[np.float64]:
+    w = scipy.signal.windows.get_window(WINDOWS[name][0], n_samples, fftbins=True)
+    w.flags.writeable = False
+    return w
 
 
 def window_metrics(name: str, n_samples: int = 4096) -> tuple[float, float]:
@@ -52,27 +58,43 @@ def window_metrics(name: str, n_samples: int = 4096) -> tuple[float, float]:
     return enbw, loss_db
 
 
+# longest periodogram used for the noise floor; longer records are sampled in
+# NOISE_SEGMENTS pieces of this length spread over the record
+NOISE_FFT_LEN = 1 << 16
+NOISE_SEGMENTS = 16
+
+
 def spectral_noise_var(
-    y: NDArray[np.float64], window: NDArray[np.float64], tone_bins: NDArray, half_width: int
+    y: NDArray[np.float64], window_name: str, theta: float, n_harm: int
 ) -> float:
     """White-noise variance per sample from the median of a windowed periodogram.
 
-    Bins within ``half_width + 2`` of DC and of each tone are left out; for white noise
-    ``|Y_k|^2`` is exponential with mean ``sigma^2 sum w^2``, whose median is ``ln 2``
-    times the mean, so ``sigma^2 = median / (ln 2 sum w^2)``. The median keeps leakage
-    tails of strong tones from inflating the estimate. Falls back to the variance left
-    after the tones when fewer than 8 bins remain (very short records); returns 0 for
-    a noise-free record.
+    Bins within the window's main lobe plus two bins of DC and of each harmonic
+    ``h theta`` (``h = 1..n_harm``) are left out; for white noise ``|Y_k|^2`` is
+    exponential with mean ``sigma^2 sum w^2``, whose median is ``ln 2`` times the mean,
+    so ``sigma^2 = median / (ln 2 sum w^2)``. The median keeps leakage tails of strong
+    tones from inflating the estimate. Records longer than 4 * 65536 samples use up to
+    16 pieces of 65536 samples spread over the record (the cost stays bounded).
+    Returns NaN when fewer than 8 bins remain (very short records); 0 for a noise-free
+    record.
     """
     n = y.size
-    spec = np.abs(scipy.fft.rfft((y - y.mean()) * window, workers=1)) ** 2
-    keep = np.ones(spec.size, dtype=bool)
-    guard = half_width + 2
-    for centre in np.concatenate([[0.0], np.asarray(tone_bins, dtype=float)]):
+    seg_len = n if n <= 4 * NOISE_FFT_LEN else NOISE_FFT_LEN
+    n_seg = min(n // seg_len, NOISE_SEGMENTS)
+    starts = np.linspace(0, n - seg_len, n_seg).astype(np.int64)
+    segs = np.stack([y[s : s + seg_len] for s in starts])
+    window = make_window(window_name, seg_len)
+    segs = (segs - segs.mean(axis=1, keepdims=True)) * window
+    spec = np.abs(scipy.fft.rfft(segs, axis=1, workers=1)) ** 2
+    keep = np.ones(spec.shape[1], dtype=bool)
+    guard = WINDOWS[window_name][1] + 2
+    bins = theta * seg_len / (2 * math.pi) * np.arange(0, n_harm + 1)
+    for centre in bins:
         lo = max(int(np.floor(centre - guard)), 0)
-        hi = min(int(np.ceil(centre + guard)) + 1, spec.size)
+        hi = min(int(np.ceil(centre + guard)) + 1, spec.shape[1])
         keep[lo:hi] = False
-    keep[-1] = keep[-1] and n % 2 == 1  # a Nyquist bin of an even record is real
-    if keep.sum() < 8:
+    if seg_len % 2 == 0:
+        keep[-1] = False  # the Nyquist bin of an even length is real: not exponential
+    if keep.sum() * n_seg < 8:
         return math.nan
-    return float(np.median(spec[keep]) / math.log(2.0) / float(window @ window))
+    return float(np.median(spec[:, keep]) / math.log(2.0) / float(window @ window))

@@ -31,6 +31,8 @@ from loopwright.errors import EstimationError
 __all__ = ["estimate_xcorr"]
 
 MIN_SEGMENT_CYCLES = 2.0
+MIN_SEGMENT_LEN = 64
+NYQUIST_GUARD_BINS = 4.0
 
 
 def _segment_phasors(y: NDArray[np.float64], n_seg: int, seg_len: int, window: NDArray,
@@ -85,14 +87,19 @@ def estimate_xcorr(
         raise EstimationError(f"unknown window {window!r}; choose one of: {', '.join(WINDOWS)}")
     n = reference_v.size
     cycles = frequency_hz * n / sample_rate_hz
+    # a segment needs MIN_SEGMENT_CYCLES cycles, MIN_SEGMENT_LEN samples, and the
+    # stimulus a few bins below the segment's Nyquist (its image leaks otherwise)
+    nyquist_room = 0.5 - frequency_hz / sample_rate_hz  # cycles/sample
+    min_len = max(MIN_SEGMENT_LEN, math.ceil(NYQUIST_GUARD_BINS / nyquist_room))
+    max_seg = max(1, min(int(cycles // MIN_SEGMENT_CYCLES), n // min_len))
     if segments is None:
-        n_seg = int(np.clip(cycles // 8, 1, 32))
+        n_seg = int(np.clip(cycles // 8, 1, min(32, max_seg)))
     else:
         n_seg = int(segments)
-        if n_seg < 1 or cycles / n_seg < MIN_SEGMENT_CYCLES:
+        if n_seg < 1 or n_seg > max_seg:
             raise EstimationError(
-                f"segments={segments}: each segment needs at least {MIN_SEGMENT_CYCLES:g} cycles "
-                f"and the record holds {cycles:.3g}; use at most {int(cycles // 2)} segments"
+                f"segments={segments}: each segment needs at least {MIN_SEGMENT_CYCLES:g} "
+                f"cycles and {min_len} samples here; use 1 to {max_seg} segments"
             )
     seg_len = n // n_seg
     theta = 2 * math.pi * frequency_hz / sample_rate_hz
@@ -100,7 +107,6 @@ def estimate_xcorr(
     thetas = theta * np.arange(1, n_harm + 1)
     w = make_window(window, seg_len)
     sw = float(w.sum())
-    half_width = WINDOWS[window][1]
     xr, off_r = _segment_phasors(reference_v, n_seg, seg_len, w, thetas)
     xs, off_s = _segment_phasors(response_v, n_seg, seg_len, w, thetas)
     s_xy = complex(np.mean(np.conj(xr[:, 0]) * xs[:, 0]))
@@ -114,14 +120,13 @@ def estimate_xcorr(
     # align segment i (starting at sample i L) to t = 0, then average coherently
     starts = np.arange(n_seg)[:, None] * seg_len
     align = np.exp(-1j * starts * thetas[None, :])
-    full_w = make_window(window, n)
     channels = []
     noise = []
     coherent = []
     for x, y, off in ((xr, reference_v, off_r), (xs, response_v, off_s)):
         phasors = 2.0 * np.mean(x * align, axis=0) / sw
         amps = np.abs(phasors)
-        nv = spectral_noise_var(y, full_w, cycles * np.arange(1, n_harm + 1), half_width)
+        nv = spectral_noise_var(y, window, theta, n_harm)
         if not math.isfinite(nv):
             nv = max(float(np.var(y)) - float(np.sum(amps**2)) / 2.0, 0.0)
         noise.append(nv)
