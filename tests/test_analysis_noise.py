@@ -27,7 +27,8 @@ def _exact():
     }
 
 
-def _trials(gain_std_db: float, phase_std_deg: float, per_decade: int, seed: int):
+def _trials(gain_std_db: float, phase_std_deg: float, per_decade: int, seed: int,
+            with_std: bool = True):
     system, _ = _exact()
     f = np.logspace(-2, 2, 4 * per_decade + 1) * F_SCALE_HZ
     loop = np.asarray(system(1j * f / F_SCALE_HZ))
@@ -37,20 +38,26 @@ def _trials(gain_std_db: float, phase_std_deg: float, per_decade: int, seed: int
     noise_g = rng.normal(0.0, gain_std_db, (TRIALS, f.size))
     noise_p = rng.normal(0.0, phase_std_deg, (TRIALS, f.size))
     g_std, p_std = np.full(f.size, gain_std_db), np.full(f.size, phase_std_deg)
+    if not with_std:
+        g_std = p_std = None
     for k in range(TRIALS):
         response = FrequencyResponse.from_gain_phase(f, gain_db + noise_g[k],
                                                      phase_deg + noise_p[k], g_std, p_std)
         yield analyze_loop(response)
 
 
-@pytest.mark.parametrize(("gain_std_db", "phase_std_deg", "per_decade"),
-                         [(0.1, 0.5, 20), (0.02, 0.1, 10)])
-def test_figures_within_their_uncertainty(gain_std_db, phase_std_deg, per_decade) -> None:
+@pytest.mark.parametrize(("gain_std_db", "phase_std_deg", "per_decade", "with_std"),
+                         [(0.1, 0.5, 20, True), (0.02, 0.1, 10, True), (0.1, 0.5, 20, False)])
+def test_figures_within_their_uncertainty(gain_std_db, phase_std_deg, per_decade,
+                                          with_std) -> None:
+    # Without std columns the scatter is estimated from the data (second differences).
     _, exact = _exact()
     z = []
     methods = set()
-    for figures in _trials(gain_std_db, phase_std_deg, per_decade, seed=7):
+    for figures in _trials(gain_std_db, phase_std_deg, per_decade, seed=7, with_std=with_std):
         methods.add(figures.interpolation)
+        assert figures.uncertainty_source == (
+            "std columns and model" if with_std else "scatter estimate and model")
         pm, gm = figures.worst_crossover, figures.worst_zero_phase
         z.append([
             (pm.phase_margin_deg - exact["pm"]) / pm.phase_margin_deg_std,
@@ -90,5 +97,24 @@ def test_uncertainty_of_exact_data_is_tiny() -> None:
     figures = analyze_loop(FrequencyResponse(f, -np.asarray(system(1j * f / F_SCALE_HZ))))
     pm = figures.worst_crossover
     assert figures.interpolation == "aaa"
+    assert figures.uncertainty_source == "model"
     assert pm.phase_margin_deg_std < 1e-6
     assert figures.worst_zero_phase.gain_margin_db_std < 1e-6
+
+
+def test_scatter_estimate_recovers_the_noise_std() -> None:
+    # Known seeded noise on a smooth loop at 20 points per decade.
+    from loopwright.analysis.loop import scatter_std
+
+    system, _ = _exact()
+    f = np.logspace(-2, 2, 81) * F_SCALE_HZ
+    loop = -np.asarray(system(1j * f / F_SCALE_HZ))
+    rng = np.random.default_rng(9)
+    estimates = []
+    for _ in range(50):
+        noisy = loop * 10 ** (rng.normal(0, 0.1, f.size) / 20) * np.exp(
+            1j * np.deg2rad(rng.normal(0, 0.5, f.size)))
+        estimates.append(scatter_std(FrequencyResponse(f, noisy)))
+    gain_std, phase_std = np.mean(estimates, axis=0)
+    assert gain_std == pytest.approx(0.1, rel=0.15)
+    assert phase_std == pytest.approx(0.5, rel=0.15)

@@ -123,7 +123,7 @@ class LoopFigures:
     frequency_range_hz: tuple[float, float]
     interpolation: str
     interpolation_note: str
-    has_data_uncertainty: bool
+    uncertainty_source: str
     gain_crossovers: tuple[GainCrossover, ...]
     zero_phase_crossings: tuple[ZeroPhaseCrossing, ...]
     resonances: tuple[Resonance, ...]
@@ -175,7 +175,7 @@ class LoopFigures:
             "frequency_range_hz": list(self.frequency_range_hz),
             "interpolation": self.interpolation,
             "interpolation_note": self.interpolation_note,
-            "has_data_uncertainty": self.has_data_uncertainty,
+            "uncertainty_source": self.uncertainty_source,
             "phase_margin_deg": None if pm is None else pm.phase_margin_deg,
             "phase_margin_deg_std": None if pm is None else pm.phase_margin_deg_std,
             "phase_margin_frequency_hz": None if pm is None else pm.frequency_hz,
@@ -192,6 +192,29 @@ class LoopFigures:
         }
 
 
+def scatter_std(response: FrequencyResponse) -> tuple[float, float]:
+    """Per-point noise of gain (dB) and phase (deg) estimated from the data alone.
+
+    Second differences in log f remove a smooth curve's slope; for white noise of std
+    sigma they have std ``sigma sqrt(6)``. The median absolute value (/0.6745) resists
+    the few large differences at sharp features; any curvature left makes the estimate
+    larger, never smaller.
+    """
+    x = np.log(response.frequency_hz)
+    gain = response.gain_db
+    phase = np.rad2deg(np.unwrap(np.angle(response.h)))
+
+    def sigma(values: FloatArray) -> float:
+        # Second divided differences scaled to equal spacing (sweeps need not be even).
+        h1, h2 = np.diff(x)[:-1], np.diff(x)[1:]
+        d1 = np.diff(values)[:-1] / h1
+        d2 = np.diff(values)[1:] / h2
+        second = (d2 - d1) * (h1 * h2) / (0.5 * (h1 + h2))
+        return float(np.median(np.abs(second)) / 0.6745 / np.sqrt(6.0))
+
+    return sigma(gain), sigma(phase)
+
+
 class _Curve:
     """H on x = ln f through the model, with the data's std interpolated."""
 
@@ -201,8 +224,19 @@ class _Curve:
         self.lo, self.hi = float(self.xs[0]), float(self.xs[-1])
         n = response.frequency_hz.size
         zeros = np.zeros(n)
-        self.gain_db_std = zeros if response.gain_db_std is None else response.gain_db_std
-        self.phase_deg_std = zeros if response.phase_deg_std is None else response.phase_deg_std
+        if response.has_uncertainty:
+            self.source = "std columns and model"
+            self.gain_db_std = zeros if response.gain_db_std is None else response.gain_db_std
+            self.phase_deg_std = (zeros if response.phase_deg_std is None
+                                  else response.phase_deg_std)
+        elif not model.trusted and n >= 5:
+            # No std given and the data are not a clean rational: estimate the scatter.
+            self.source = "scatter estimate and model"
+            gain_std, phase_std = scatter_std(response)
+            self.gain_db_std, self.phase_deg_std = np.full(n, gain_std), np.full(n, phase_std)
+        else:
+            self.source = "model"
+            self.gain_db_std = self.phase_deg_std = zeros
         sub = SUBDIVISIONS_TRUSTED if model.trusted else 1
         t = np.linspace(0.0, 1.0, sub, endpoint=False)
         grid = (self.xs[:-1, None] + np.diff(self.xs)[:, None] * t[None, :]).ravel()
@@ -403,7 +437,7 @@ def analyze_loop(response: FrequencyResponse, sign: int = 1) -> LoopFigures:
         frequency_range_hz=(float(used.frequency_hz[0]), float(used.frequency_hz[-1])),
         interpolation=model.method,
         interpolation_note=model.reason,
-        has_data_uncertainty=used.has_uncertainty,
+        uncertainty_source=curve.source,
         gain_crossovers=tuple(_gain_crossovers(curve)),
         zero_phase_crossings=tuple(_zero_phase_crossings(curve)),
         resonances=tuple(_resonances(curve)),
