@@ -14,6 +14,12 @@ volts = (code - y_reference) * y_increment + y_origin. The ADC spans the screen,
 offset +- 4 divisions, over the full int16 range: y_increment = 8 div * scale / 65536,
 y_origin = offset, y_reference = 0; an 8- or 12-bit ADC gives left-aligned codes.
 ``scope-text`` sends volts as ``%.7e`` separated by commas on one line.
+
+The trigger settings are kept and read back, but the bench always triggers on the
+stimulus' rising zero crossing (``bench.acquire``). Before the first acquisition the
+scope is idle: ``ACQ:STAT?`` answers ``DONE`` and ``:ACQ:DONE?`` ``1``; asking for data
+then (or while an acquisition runs) gives -230 and an empty reply (``#10`` or an
+empty line), which keeps the client in step.
 """
 
 from __future__ import annotations
