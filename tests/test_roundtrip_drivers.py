@@ -180,3 +180,33 @@ def test_raw_pyvisa_block_read_both_byte_orders(sim_bench, open_sim, big_endian)
     )
     model = sim_bench.instruments["scope"]
     np.testing.assert_array_equal(data.astype(np.int16), model.codes(model.record, 1))
+
+
+def test_a_point_taken_before_settling_is_measurably_wrong(start_sim_bench, opened, fake_clock):
+    # The generator front end starts the bench's settling transient at each change, so
+    # a runner that waits too little sees it through the scope (practice).
+    server = start_sim_bench("rational", adc_bits=0, clock=fake_clock)
+    gen = open_instrument(server.resources["generator"], "generator", timeout_s=3.0)
+    sc = open_instrument(server.resources["scope"], "scope", timeout_s=5.0)
+    opened += [gen, sc]
+    for channel in (1, 2):
+        sc.set_channel(channel, ChannelSettings(scale_v_per_div=1.0))
+    sc.set_timebase(2000, 1e7)  # 0.2 ms: a few of the DUT's time constants
+    gen.set_sine(10_000.0, 1.0)
+    gen.set_output(True)
+
+    def gain_error(frequency_hz: float) -> float:
+        capture = sc.acquire([1, 2])
+        t_s = capture.time_s()
+        h = sine_phasor(t_s, capture.volts[2], frequency_hz) / sine_phasor(
+            t_s, capture.volts[1], frequency_hz
+        )
+        exact = complex(server.bench.exact_response(np.array([frequency_hz]))[0])
+        return abs(h - exact) / abs(exact)
+
+    fake_clock.advance(1.0)
+    assert gain_error(10_000.0) < 1e-5
+    gen.set_frequency(12_000.0)
+    assert gain_error(12_000.0) > 1e-3  # at once: the transient is in the record
+    fake_clock.advance(1.0)
+    assert gain_error(12_000.0) < 1e-5
