@@ -192,6 +192,7 @@ def amplifier_run(tmp_path_factory) -> Path:
     return write_run(folder, third_order_amplifier(), start_hz=1e3, stop_hz=200e3,
                      serial='SN<A1>&"x"', limits=AMPLIFIER_LIMITS,
                      operator="<script>alert(1)</script>",
+                     procedure_name="amp --><script>alert(2)</script>",
                      flags={3: "low_snr", 20: "clipped;nonlinear", 41: "unsettled"},
                      calibration=True)
 
@@ -280,6 +281,7 @@ def test_html_escapes_user_strings(amplifier_report):
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in text
     assert "SN&lt;A1&gt;&amp;&quot;x&quot;" in text
     assert "SN&lt;9&gt;&amp;1" in text  # an *IDN? reply
+    assert "<!--" not in text  # nothing from a file can close a comment early
 
 
 def test_html_holds_closed_loop_calibration_provenance_points(

@@ -484,16 +484,20 @@ def bode_figure(
 
 
 def overlay_figure(
-    runs: Sequence[tuple[str, pd.DataFrame]],
+    runs: Sequence[tuple[str, pd.DataFrame, Mapping | None]],
     title: str | None = None,
     on_run: Callable[[str], None] | None = None,
 ) -> Figure:
     """Several runs on one Bode plot, each with its own colour and line style.
 
+    Each run's gain crossovers are marked with a circle (at 0 dB and at its phase
+    margin) and its 0° crossings with a square, in the run's colour.
+
     Parameters
     ----------
     runs
-        (label, points) per run.
+        (label, points, analysis) per run; analysis is ``summary.json["analysis"]``
+        or None.
     title
         Figure title.
     on_run
@@ -502,7 +506,8 @@ def overlay_figure(
     fig, ax_gain, ax_phase = _new_bode_axes(title)
     handles = []
     low_f, high_f, gains = np.inf, 0.0, []
-    for (label, points), (colour, style) in zip(runs, palette.run_styles(len(runs)), strict=False):
+    for (label, points, analysis), (colour, style) in zip(
+            runs, palette.run_styles(len(runs)), strict=False):
         points = points.sort_values("frequency_hz")
         f = points["frequency_hz"].to_numpy(dtype=float)
         g = points["gain_db"].to_numpy(dtype=float)
@@ -510,6 +515,20 @@ def overlay_figure(
         ax_gain.plot(f, g, color=colour, linestyle=style, linewidth=1.4, zorder=3)
         ax_phase.plot(*wrap_breaks(f, p), color=colour, linestyle=style, linewidth=1.4,
                       zorder=3)
+        marker = {"mfc": "white", "mec": colour, "mew": 1.3, "zorder": 5, "ls": "none"}
+        for crossing in (analysis or {}).get("gain_crossovers") or []:
+            f_c, pm = crossing.get("frequency_hz"), crossing.get("phase_margin_deg")
+            if is_number(f_c):
+                ax_gain.plot([f_c], [0.0], marker="o", ms=6, **marker)
+                if is_number(pm):
+                    ax_phase.plot([f_c], [pm], marker="o", ms=6, **marker)
+        for crossing in (analysis or {}).get("zero_phase_crossings") or []:
+            f_z, loop_gain = crossing.get("frequency_hz"), crossing.get("loop_gain")
+            if is_number(f_z):
+                ax_phase.plot([f_z], [0.0], marker="s", ms=5, **marker)
+                if is_number(loop_gain) and loop_gain > 0:
+                    ax_gain.plot([f_z], [20.0 * math.log10(loop_gain)], marker="s", ms=5,
+                                 **marker)
         handles.append(Line2D([], [], color=colour, linestyle=style, lw=1.6, label=label))
         positive = f[np.isfinite(f) & (f > 0)]
         if positive.size:
@@ -544,12 +563,14 @@ def svg_document(fig: Figure) -> str:
 def inline_svg(document: str, id_prefix: str) -> str:
     """An SVG document as an ``<svg>`` element for inlining into HTML.
 
-    The XML prolog, DOCTYPE and metadata block are dropped (the metadata names outside
-    vocabularies), and every element id gets ``id_prefix`` so several figures can share
+    The XML prolog, DOCTYPE, metadata block (it names outside vocabularies) and
+    comments are dropped, and every element id gets ``id_prefix`` so several figures can share
     one HTML document without their ids colliding.
     """
     text = document[document.index("<svg"):]
     text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, flags=re.S)
+    # Comments repeat the plot's text (serials, names): drop them, the glyphs stay.
+    text = re.sub(r"<!--.*?-->", "", text, flags=re.S)
     ids = set(re.findall(r'\bid="([^"]+)"', text))
     if ids:
         text = re.sub(r'\bid="([^"]+)"', lambda m: f'id="{id_prefix}{m.group(1)}"', text)

@@ -128,7 +128,9 @@ def comparison_html(runs: Sequence[ReportInput], labels: Sequence[str], svg: str
         "reference of each run on one plot; figures from each run's summary.json.</p>"
         "</header>"
         "<section id=\"overlay\"><h2>Overlaid Bode plot</h2>"
-        + html_report.figure(svg, "Each run has its own colour and line style.")
+        + html_report.figure(svg, "Each run has its own colour and line style; circles: "
+                             "gain crossovers (at 0 dB and at the phase margin); squares: "
+                             "0° crossings (at 0° and at the loop gain there).")
         + "</section><section id=\"figures\"><h2>Figures per run</h2>" + per_run
         + "<h2>Spread</h2>" + stats + "</section>"
         + "<section id=\"runs\"><h2>Runs</h2>" + folders + "</section>"
@@ -180,7 +182,8 @@ def render_comparison(
         if bar is not None:
             task = bar.add_task("drawing runs", total=len(runs))
         fig = bode.overlay_figure(
-            [(label, run.points) for label, run in zip(labels, runs, strict=False)],
+            [(label, run.points, run.summary.get("analysis"))
+             for label, run in zip(labels, runs, strict=False)],
             title=f"Open-loop gain H of {len(runs)} runs",
             on_run=None if bar is None else (lambda _label: bar.advance(task)),
         )
