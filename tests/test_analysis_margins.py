@@ -17,6 +17,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from loopwright.analysis import FrequencyResponse, analyze_loop
 from loopwright.cli import main
@@ -264,3 +266,22 @@ def test_a_loop_that_never_crosses() -> None:
     assert figures.phase_margin_deg is None and figures.gain_margin_db is None
     # flat low-frequency gain: the -3 dB bandwidth applies (pole at w = 1 -> 10 kHz)
     assert figures.bandwidth_hz == pytest.approx(F_SCALE_HZ, rel=1e-3)
+
+
+@settings(max_examples=25, deadline=None)
+@given(index=st.integers(0, len(RANDOM_LOOPS) - 1), decades=st.floats(-3.0, 3.0))
+def test_figures_follow_a_frequency_scale(index, decades) -> None:
+    # Property: time-scaling a loop (f -> k f) scales every crossing by k and leaves the
+    # margins as they are (a margin is a property of the Nyquist curve, Ogata 7-6 (mem)).
+    system = RANDOM_LOOPS[index]
+    f = _sweep(-3, 3)
+    base = analyze_loop(FrequencyResponse(f, _measured(system, f)))
+    k = 10.0**decades
+    scaled = analyze_loop(FrequencyResponse(f * k, _measured(system, f)))
+    assert len(scaled.gain_crossovers) == len(base.gain_crossovers)
+    for a, b in zip(base.gain_crossovers, scaled.gain_crossovers, strict=True):
+        assert b.frequency_hz == pytest.approx(a.frequency_hz * k, rel=1e-6)
+        assert b.phase_margin_deg == pytest.approx(a.phase_margin_deg, abs=1e-6)
+    for a, b in zip(base.zero_phase_crossings, scaled.zero_phase_crossings, strict=True):
+        assert b.frequency_hz == pytest.approx(a.frequency_hz * k, rel=1e-6)
+        assert b.gain_margin_db == pytest.approx(a.gain_margin_db, abs=1e-6)

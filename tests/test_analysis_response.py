@@ -87,6 +87,26 @@ def test_csv_polar_with_std_and_extra_columns(tmp_path: Path) -> None:
     assert r.source == str(path)
 
 
+def test_csv_in_the_run_folder_layout(tmp_path: Path) -> None:
+    # The run folder's points.csv columns (store/writer.py POINT_COLUMNS), with an
+    # unknown (blank) std: re/im are used and the blank std column is dropped.
+    from loopwright.store.writer import POINT_COLUMNS
+
+    rows = []
+    for k, f in enumerate((1e3, 2e3, 4e3)):
+        cells = dict.fromkeys(POINT_COLUMNS, "1")
+        cells.update(index=str(k), frequency_hz=str(f), gain_re=str(-2.0 / (k + 1)),
+                     gain_im="0.5", gain_db="999", phase_deg="999", gain_db_std="0.1",
+                     phase_deg_std="" if k == 1 else "0.2", flags="")
+        rows.append(",".join(cells[c] for c in POINT_COLUMNS))
+    path = _write(tmp_path / "points.csv", ",".join(POINT_COLUMNS) + "\n" + "\n".join(rows)
+                  + "\n")
+    r = FrequencyResponse.from_csv(path)
+    assert np.allclose(r.h, [-2 + 0.5j, -1 + 0.5j, -2 / 3 + 0.5j])
+    assert np.allclose(r.gain_db_std, 0.1)
+    assert r.phase_deg_std is None
+
+
 def test_csv_rectangular(tmp_path: Path) -> None:
     path = _write(tmp_path / "r.csv", "frequency_hz,gain_re,gain_im\n10,1,1\n20,0,-2\n")
     r = FrequencyResponse.from_csv(path)

@@ -9,8 +9,9 @@ from arrays or read from a CSV file; every bad input ends in
 CSV layout: a header line, then one point per line. Required columns are
 ``frequency_hz`` and either ``gain_db,phase_deg`` or ``gain_re,gain_im`` (when both
 pairs are present the exact ``gain_re,gain_im`` pair is used). Optional columns
-``gain_db_std,phase_deg_std``; any other column is ignored, so a run's ``points.csv``
-loads as it is. Blank lines and lines starting with ``#`` are skipped.
+``gain_db_std,phase_deg_std`` (a column with a blank or ``nan`` cell is treated as
+unknown and dropped); any other column is ignored, so a run's ``points.csv`` of one
+sweep step loads as it is. Blank lines and lines starting with ``#`` are skipped.
 """
 
 from __future__ import annotations
@@ -318,7 +319,11 @@ def _parse_csv(lines: Sequence[str], path: Path) -> FrequencyResponse:
             )
         line_of[k] = number
         for name in wanted:
-            values[name][k] = _parse_float(row[column[name]], path, number, name)
+            cell = row[column[name]]
+            if name in _STD and cell.strip().lower() in ("", "nan"):
+                values[name][k] = np.nan  # unknown std: the column is dropped below
+                continue
+            values[name][k] = _parse_float(cell, path, number, name)
     if points < 2:
         raise InputError(f"a frequency response needs at least 2 points, got {points}",
                          path=path)
@@ -326,8 +331,9 @@ def _parse_csv(lines: Sequence[str], path: Path) -> FrequencyResponse:
         h = values["gain_re"] + 1j * values["gain_im"]
     else:
         h = 10.0 ** (values["gain_db"] / 20.0) * np.exp(1j * np.deg2rad(values["phase_deg"]))
-    g_std = values.get("gain_db_std")
-    p_std = values.get("phase_deg_std")
+    g_std, p_std = (values.get(name) for name in _STD)
+    g_std = None if g_std is None or np.isnan(g_std).any() else g_std
+    p_std = None if p_std is None or np.isnan(p_std).any() else p_std
     problem = _find_problem(values["frequency_hz"], h, g_std, p_std)
     if problem is not None:
         field = problem.field if problem.field != "gain" else ",".join(pair)
