@@ -293,6 +293,20 @@ def test_scope_text_exact_commands_and_polling(recorder):
     scope.close()
 
 
+def test_scope_limits_scale_with_probe_ratio(recorder):
+    # scale and offset are at the probe tip; their limits hold at the input (DIALECTS.md)
+    recorder.identity = _simulated("scope", "scope-block")
+    with open_instrument(recorder.resource, "scope", timeout_s=2.0) as scope:
+        mark = len(recorder.commands)
+        scope.set_channel(1, ChannelSettings(50.0, -300.0, "DC", 10.0))
+        assert recorder.sent_since(mark)[:3] == ["CHAN1:PROB 10", "CHAN1:SCAL 50",
+                                                 "CHAN1:OFFS -300"]
+        mark = len(recorder.commands)
+        with pytest.raises(DriverError, match="above the limit 100"):
+            scope.set_channel(1, ChannelSettings(101.0, 0.0, "DC", 10.0))
+        assert recorder.sent_since(mark) == []
+
+
 BAD_SCOPE_CALLS = [
     ("set_channel", (3, ChannelSettings(1.0))),               # no channel 3
     ("set_channel", (True, ChannelSettings(1.0))),
@@ -303,6 +317,8 @@ BAD_SCOPE_CALLS = [
     ("set_channel", (1, ChannelSettings(1.0, coupling="*RST"))),
     ("set_channel", (1, ChannelSettings(1.0, coupling="ac"))),
     ("set_channel", (1, ChannelSettings(1.0, offset_v="0;*RST"))),
+    ("set_channel", (1, ChannelSettings(1.0, probe_attenuation="10;*RST"))),
+    ("set_channel", (1, ChannelSettings(1.0, offset_v=60.0))),            # above 50 V
     ("set_timebase", (1000.5, 1e6)),                          # not a whole number
     ("set_timebase", (50, 1e6)),                              # below 100 points
     ("set_timebase", (1000, 2e9)),                            # above 1 GS/s

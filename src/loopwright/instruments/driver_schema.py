@@ -144,6 +144,9 @@ class NumberSpec(_Strict):
     max: float | None = None
     format: str = Field(".10g", description="Python format spec: .10g, .6e, d ...")
     integer: bool = False
+    times_probe_ratio: bool = Field(
+        False, description="scope channel values: min and max are multiplied by the probe"
+        " ratio (limits hold at the scope input, values are at the probe tip)")
 
     @model_validator(mode="after")
     def _check(self) -> NumberSpec:

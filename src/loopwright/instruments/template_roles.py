@@ -57,8 +57,12 @@ class GeneratorCaps:
     max_peak_v: float | None = None
 
 
-def format_number(name: str, value: Any, spec: NumberSpec, driver: str) -> str:
+def format_number(name: str, value: Any, spec: NumberSpec, driver: str,
+                  limit_factor: float = 1.0) -> str:
     """Check ``value`` against ``spec`` and format it for the instrument.
+
+    ``limit_factor`` multiplies ``spec.min`` and ``spec.max`` (the probe ratio for
+    values with ``times_probe_ratio``).
 
     Raises
     ------
@@ -73,11 +77,13 @@ def format_number(name: str, value: Any, spec: NumberSpec, driver: str) -> str:
         raise DriverError(f"{name} must be finite, got {value!r}; nothing was sent")
     if spec.integer and number != int(number):
         raise DriverError(f"{name} must be a whole number, got {value!r}; nothing was sent")
-    if spec.min is not None and number < spec.min:
-        raise DriverError(f"{name} = {number:g} is below the limit {spec.min:g} of driver"
+    low = None if spec.min is None else spec.min * limit_factor
+    high = None if spec.max is None else spec.max * limit_factor
+    if low is not None and number < low:
+        raise DriverError(f"{name} = {number:g} is below the limit {low:g} of driver"
                           f" {driver!r}; nothing was sent")
-    if spec.max is not None and number > spec.max:
-        raise DriverError(f"{name} = {number:g} is above the limit {spec.max:g} of driver"
+    if high is not None and number > high:
+        raise DriverError(f"{name} = {number:g} is above the limit {high:g} of driver"
                           f" {driver!r}; nothing was sent")
     text = format(int(number), "d") if spec.format == "d" else format(number, spec.format)
     if not _NUMBER.match(text):  # a format spec can never yield anything else; be sure
@@ -122,10 +128,14 @@ class TemplateInstrument:
             self.send(list(spec.init), "init")
 
     # values
-    def number(self, name: str, value: Any) -> str:
-        """``value`` checked and formatted by the driver's ``values: name:`` entry."""
-        return format_number(name, value, self.spec.values.get(name, _DEFAULT_SPEC),
-                             self.spec.name)
+    def number(self, name: str, value: Any, probe_ratio: float = 1.0) -> str:
+        """``value`` checked and formatted by the driver's ``values: name:`` entry.
+
+        ``probe_ratio`` scales the limits of entries marked ``times_probe_ratio``.
+        """
+        spec = self.spec.values.get(name, _DEFAULT_SPEC)
+        factor = probe_ratio if spec.times_probe_ratio else 1.0
+        return format_number(name, value, spec, self.spec.name, factor)
 
     def word(self, set_name: str, value: Any) -> str:
         """The instrument word for role value ``value`` of word set ``set_name``.
@@ -349,13 +359,14 @@ class TemplateScope(TemplateInstrument):
         scale = settings.scale_v_per_div
         fields = {
             "channel": self.channel(channel),
-            "volts_per_div": self.number("volts_per_div", scale),
-        }
-        fields |= {
-            "full_range_v": self.number("full_range_v", scale * SCREEN_DIVISIONS),
-            "offset_v": self.number("offset_v", settings.offset_v),
-            "coupling": self.word("coupling", settings.coupling),
             "probe_ratio": self.number("probe_ratio", settings.probe_attenuation),
+        }
+        ratio = float(settings.probe_attenuation)
+        fields["volts_per_div"] = self.number("volts_per_div", scale, ratio)
+        fields |= {
+            "full_range_v": self.number("full_range_v", scale * SCREEN_DIVISIONS, ratio),
+            "offset_v": self.number("offset_v", settings.offset_v, ratio),
+            "coupling": self.word("coupling", settings.coupling),
         }
         self.send([render(t, fields) for t in self._need("commands").set_channel],
                   "set_channel")
