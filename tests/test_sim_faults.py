@@ -11,9 +11,10 @@ import time
 
 import numpy as np
 import pytest
-from mock_instruments.faults import Faults
 from pyvisa import constants
 from pyvisa.errors import VisaIOError
+
+from mock_instruments.faults import Faults
 
 TMO = constants.StatusCode.error_timeout
 

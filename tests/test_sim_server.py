@@ -11,10 +11,10 @@ import sys
 import threading
 
 import pytest
-from mock_instruments.duts import DUTS, model_list
-from mock_instruments.server import InstrumentServer
 
 from loopwright.cli import main
+from mock_instruments.duts import DUTS, model_list
+from mock_instruments.server import InstrumentServer
 
 
 def connect(resource: str) -> socket.socket:
