@@ -215,3 +215,32 @@ def test_noisy_data_falls_back_to_pchip() -> None:
     assert model.method == "pchip"
     assert "held-out" in model.reason
     assert np.allclose(model(f), noisy)  # still passes through the points
+
+
+@pytest.mark.filterwarnings("ignore:AAA failed to converge")
+def test_froissart_doublets_are_detected() -> None:
+    # Nakatsukasa, Sete & Trefethen 2018, sec. 5: fitting noise to a tight tolerance
+    # without clean-up leaves pole-zero pairs with tiny residues (Froissart doublets).
+    from scipy.interpolate import AAA
+
+    from loopwright.analysis.interpolate import _spurious_poles
+
+    rng = np.random.default_rng(4)
+    f = np.logspace(2, 6, 81)
+    z = 1j * f / 1e4
+    exact = -_loop(f) * z**1 * (1 + z) ** 2  # flattened as build_model does
+    noisy = exact * (1 + 1e-6 * rng.normal(size=f.size))
+    dirty = AAA(z, noisy, rtol=1e-15, max_terms=40, clean_up=False)
+    clean = AAA(z, exact)
+    assert _spurious_poles(dirty, z, noisy) > 0
+    assert _spurious_poles(clean, z, exact) == 0
+
+
+def test_long_noisy_sweep_falls_back() -> None:
+    rng = np.random.default_rng(8)
+    f = np.logspace(2, 6, 2001)
+    noisy = -_loop(f) * 10 ** (rng.normal(0, 0.05, f.size) / 20)
+    model = build_model(f, noisy)
+    assert model.method == "pchip"
+    exact_long = build_model(f, -_loop(f))
+    assert exact_long.method == "aaa"
