@@ -8,6 +8,7 @@ in-process pyvisa backend, so the same driver code runs either way.
 from __future__ import annotations
 
 import contextlib
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -106,7 +107,10 @@ def start_simulated(bench: Bench) -> tuple[Any, Any, dict[str, str], Any]:
     assert entry is not None
     dut = load_dut(bench.simulated_dut or entry.dut)
     noise = float(entry.noise_v_rms)
-    sim = SimulatedBench(dut, Impairments(noise_v_rms=(noise, noise)), seed=entry.seed)
+    # a board replayed from a stored run carries each channel's measured noise
+    own = getattr(dut, "channel_noise_v_rms", (0.0, 0.0))
+    levels = (math.hypot(noise, float(own[0])), math.hypot(noise, float(own[1])))
+    sim = SimulatedBench(dut, Impairments(noise_v_rms=levels), seed=entry.seed)
     if entry.transport == "in_process":
         from mock_instruments.visa_backend import InProcessBench
 

@@ -1,0 +1,369 @@
+"""A DUT built from a stored run: the board as it was measured, served by the bench.
+
+The stored ``H`` (points.csv: sign applied, channel mismatch divided out) is turned
+back into what the scope saw, ``raw = sign * H * mismatch``, so that the same
+procedure run on the simulated bench stores the same ``H`` again:
+
+- steady state: ``FrequencyResponse.interpolate`` (the model the loop figures use:
+  rational AAA fit, PCHIP in log f when the fit is not trusted). At a stored
+  frequency it gives the stored value. Outside the stored range the end value is
+  held (gain and phase of the first/last point): the run says nothing there, and a
+  held value neither invents a resonance nor a roll-off;
+- transients: a real rational model whose poles come from an AAA fit of the data
+  mirrored to negative frequencies (so the poles come in conjugate pairs), with
+  poles of negligible pull dropped (noise doublets) and the residues refitted by
+  least squares (the fixed-pole step of vector fitting). When a kept pole is not
+  stable, or the rational misses the data by more than :data:`MAX_TRANSIENT_MISFIT`,
+  the board has no transient (steady state only) and ``transient_note`` says why;
+- noise: each channel's noise at the probe tip from the stored SNR,
+  ``amplitude / sqrt(2) / 10**(snr/20)`` (the estimator's SNR is ``A**2/2 / var``),
+  less the simulated 12-bit ADC's own quantisation noise at the stored scale (the
+  bench adds it back), median over the points: :attr:`channel_noise_v_rms`;
+- channel mismatch: with ``mismatch: true`` (default) the response channel carries
+  the stored calibration (calibration.csv, interpolated like the runner does).
+
+A DUT file::
+
+    model: measured_response
+    run: runs/20260304T050607Z_quick_B17   # a run folder (relative: to the working dir)
+    step: 0              # the sweep step to model (default: the last one with points)
+
+``load_dut`` reads it; ``MeasuredResponseDUT.from_run(path)`` builds one in code.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+from pydantic import Field
+
+from loopwright.errors import InputError
+from mock_instruments.duts import register_dut
+from mock_instruments.duts.base import DUTModel, DUTParams
+from mock_instruments.lti import Rational, StateSpace
+
+#: Largest relative rms misfit of the transient model to the data (else no transient).
+MAX_TRANSIENT_MISFIT = 0.05
+#: A pole whose pull at the nearest data point is below this fraction of |H| there is
+#: a noise doublet and is dropped from the transient model.
+DOUBLET_PULL = 1e-3
+#: Relative distance within which two fitted poles are one (see _real_pole_set).
+POLE_MATCH = 2e-2
+#: AAA tolerances tried in turn (tight for clean data, loose for noisy data).
+RATIONAL_TOLERANCES = (1e-4, 1e-3, 1e-2, 3e-2)
+#: Most terms of the transient fit (a board of higher order is not expected).
+MAX_TRANSIENT_TERMS = 14
+#: The simulated scope's ADC (quantisation noise taken out of the stored noise).
+SIM_ADC_BITS = 12
+SCREEN_DIVISIONS = 8
+
+
+class MeasuredParams(DUTParams):
+    """Parameters of the ``measured_response`` model (see the module doc)."""
+
+    model: Literal["measured_response"] = "measured_response"
+    run: str = Field(description="the run folder whose response the board replays")
+    step: int | None = Field(None, ge=0, description="sweep step (default: last with points)")
+    mismatch: bool = Field(True, description="response channel carries calibration.csv")
+    noise: bool = Field(True, description="channel noise from the stored SNR")
+    transient: Literal["auto", "none"] = "auto"
+
+
+# --------------------------------------------------------------------------- numerics
+
+
+def hold_outside(frequency_hz: np.ndarray, lo_hz: float, hi_hz: float) -> np.ndarray:
+    """Frequencies clipped to ``[lo_hz, hi_hz]``: the model's value is held outside."""
+    return np.clip(np.asarray(frequency_hz, dtype=float), lo_hz, hi_hz)
+
+
+def channel_noise_v_rms(amplitude_v: np.ndarray, snr_db: np.ndarray,
+                        scale_v_per_div: np.ndarray | None = None,
+                        adc_bits: int = SIM_ADC_BITS) -> float:
+    """Median noise (V rms at the probe tip) of one channel over the stored points.
+
+    ``noise = A / sqrt(2) / 10**(snr/20)`` per point (the SNR of
+    :func:`loopwright.dsp.point.snr_db` is ``A**2/2 / noise variance``); the
+    quantisation noise ``(8 div * scale / 2**bits)**2 / 12`` (uniform rounding,
+    (practice)) is taken out in quadrature because the simulated scope adds it again.
+    Points without a finite amplitude and SNR are skipped; none left gives 0.
+    """
+    amp = np.asarray(amplitude_v, dtype=float)
+    snr = np.asarray(snr_db, dtype=float)
+    variance = (amp / math.sqrt(2.0) / 10.0 ** (snr / 20.0)) ** 2
+    if scale_v_per_div is not None and adc_bits > 0:
+        step = SCREEN_DIVISIONS * np.asarray(scale_v_per_div, dtype=float) / 2.0**adc_bits
+        quantisation = np.where(np.isfinite(step), step**2 / 12.0, 0.0)
+        variance = np.maximum(variance - quantisation, 0.0)
+    good = np.isfinite(variance)
+    if not np.any(good):
+        return 0.0
+    return float(np.sqrt(np.median(variance[good])))
+
+
+def _real_pole_set(poles: np.ndarray) -> list[complex]:
+    """One representative per real pole or conjugate pair (upper half-plane).
+
+    The fit of noisy mirrored data gives pairs that are only nearly conjugate and real
+    poles with a small imaginary part: a pole within :data:`POLE_MATCH` (relative) of
+    the axis is real, and one within that distance of a kept pole's conjugate is its
+    partner.
+    """
+    out: list[complex] = []
+    ordered = sorted((complex(p) for p in poles if np.isfinite(p)), key=lambda p: -p.imag)
+    for p in ordered:
+        if abs(p.imag) <= POLE_MATCH * abs(p):
+            candidate = complex(p.real, 0.0)
+        else:
+            candidate = complex(p.real, abs(p.imag))
+        if not any(abs(candidate - kept) <= POLE_MATCH * abs(candidate) for kept in out):
+            out.append(candidate)
+    return out
+
+
+def _basis(s: np.ndarray, poles: list[complex]) -> np.ndarray:
+    """Real partial-fraction basis: 1, 1/(s-a), and for a pair 2Re/(s-p), 2Im/(s-p)."""
+    columns = [np.ones_like(s)]
+    for p in poles:
+        if p.imag == 0:
+            columns.append(1.0 / (s - p.real))
+        else:
+            a, b = 1.0 / (s - p), 1.0 / (s - np.conj(p))
+            columns.append(a + b)
+            columns.append(1j * (a - b))
+    return np.stack(columns, axis=1)
+
+
+def _rational_from_basis(coeffs: np.ndarray, poles: list[complex],
+                         w_ref: float) -> Rational:
+    """The real rational ``d + sum c_k basis_k(s)`` as num/den polynomials in s."""
+    # Work in s_hat = s / w_ref (coefficients of similar size), then rescale.
+    scaled = [p / w_ref for p in poles]
+    factors = []
+    for p in scaled:
+        factors.append(np.array([1.0, -p.real]) if p.imag == 0
+                       else np.array([1.0, -2 * p.real, abs(p) ** 2]))
+    den = np.array([1.0])
+    for factor in factors:
+        den = np.polymul(den, factor)
+    num = coeffs[0] * den
+    k = 1
+    for i, p in enumerate(scaled):
+        rest = np.array([1.0])
+        for j, factor in enumerate(factors):
+            if j != i:
+                rest = np.polymul(rest, factor)
+        if p.imag == 0:
+            term = coeffs[k] / w_ref * rest
+            k += 1
+        else:
+            # c1 (1/(s-p) + 1/(s-p*)) + c2 j (1/(s-p) - 1/(s-p*))
+            #   = (2 c1 s - 2 c1 Re p - 2 c2 Im p) / ((s-p)(s-p*)), s = w_ref s_hat
+            c1, c2 = coeffs[k], coeffs[k + 1]
+            k += 2
+            linear = np.array([2 * c1, -2 * c1 * p.real - 2 * c2 * p.imag]) / w_ref
+            term = np.polymul(linear, rest)
+        num = np.polyadd(num, term)
+    n_den, n_num = den.size - 1, num.size - 1
+    den_s = den / w_ref ** np.arange(n_den, -1, -1, dtype=float)
+    num_s = num / w_ref ** np.arange(n_num, -1, -1, dtype=float)
+    return Rational(num_s, den_s)
+
+
+def transient_model(frequency_hz: np.ndarray, h: np.ndarray) -> tuple[Rational | None, str]:
+    """A stable real rational close to ``h`` for the bench's transients, or None and why.
+
+    Parameters
+    ----------
+    frequency_hz
+        Increasing positive frequencies.
+    h
+        The raw ratio the board shows at each frequency.
+    """
+    f = np.asarray(frequency_hz, dtype=float)
+    h = np.asarray(h, dtype=complex)
+    if f.size < 4:
+        return None, f"{f.size} points are too few for a rational model; steady state only"
+    note = "no rational fit tried"
+    # A loose tolerance for noisy data: the transient needs the poles, not the noise.
+    for rtol in RATIONAL_TOLERANCES:
+        model, note = _try_transient_model(f, h, rtol)
+        if model is not None:
+            return model, note
+    return None, note + "; steady state only (no transient)"
+
+
+def _try_transient_model(f: np.ndarray, h: np.ndarray, rtol: float
+                         ) -> tuple[Rational | None, str]:
+    """One attempt of :func:`transient_model` at one AAA tolerance."""
+    from scipy.interpolate import AAA
+
+    f_ref = float(np.sqrt(f[0] * f[-1]))
+    w_ref = 2 * np.pi * f_ref
+    # mirrored data: a real system has H(-jw) = conj(H(jw)), so poles pair up
+    z = np.concatenate([1j * f, -1j * f]) / f_ref
+    values = np.concatenate([h, np.conj(h)])
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            fit = AAA(z, values, rtol=rtol,
+                      max_terms=max(2, min(f.size, MAX_TRANSIENT_TERMS)))
+            poles_z = np.asarray(fit.poles(), dtype=complex)
+            residues = np.asarray(fit.residues(), dtype=complex)
+    except (ValueError, np.linalg.LinAlgError, ZeroDivisionError) as exc:
+        return None, f"the rational fit failed ({exc})"
+    keep = []
+    for p, r in zip(poles_z, residues, strict=True):
+        distance = np.abs(p - z)
+        nearest = int(np.argmin(distance))
+        if abs(r) / distance[nearest] >= DOUBLET_PULL * abs(values[nearest]):
+            keep.append(p * w_ref)
+    poles = _real_pole_set(np.asarray(keep, dtype=complex))
+    unstable = [p for p in poles if p.real >= 0]
+    if unstable:
+        shown = ", ".join(f"{p / (2 * np.pi):.4g}" for p in unstable[:3])
+        return None, f"the rational fit has unstable pole(s) at s/2pi = {shown} Hz"
+    s = 2j * np.pi * f
+    basis = _basis(s, poles)
+    weight = 1.0 / np.abs(h)
+    rows = np.concatenate([(basis * weight[:, None]).real, (basis * weight[:, None]).imag])
+    rhs = np.concatenate([(h * weight).real, (h * weight).imag])
+    coeffs, *_ = np.linalg.lstsq(rows, rhs, rcond=None)
+    model = _rational_from_basis(coeffs, poles, w_ref)
+    misfit = float(np.sqrt(np.mean(np.abs(model.at_hz(f) / h - 1.0) ** 2)))
+    if not np.isfinite(misfit) or misfit > MAX_TRANSIENT_MISFIT:
+        return None, f"the rational model misses the data by {misfit:.2g} (relative rms)"
+    return model, (f"transients from a rational model with {model.den.size - 1} poles,"
+                   f" {misfit:.2g} relative rms from the data")
+
+
+# --------------------------------------------------------------------------- bench glue
+
+
+@dataclass(frozen=True)
+class _SteadyStateSpace(StateSpace):
+    """A realisation whose steady response is the measured one (transients from A, B, C)."""
+
+    steady: Any = field(default=None, compare=False)
+
+    def response(self, omega_rad_s: float) -> complex:
+        return complex(self.steady(np.array([omega_rad_s / (2 * np.pi)]))[0])
+
+
+@dataclass(frozen=True)
+class _MeasuredRational(Rational):
+    """The transient model's polynomials with the measured steady response on the jw axis."""
+
+    steady: Any = field(default=None, compare=False)
+
+    def at_hz(self, frequency_hz) -> np.ndarray:
+        f = np.asarray(frequency_hz, dtype=float)
+        return np.asarray(self.steady(np.atleast_1d(f)), dtype=complex).reshape(f.shape)
+
+    def realise(self) -> StateSpace:
+        base = Rational(self.num, self.den).realise()
+        return _SteadyStateSpace(base.A, base.B, base.C, base.D, steady=self.steady)
+
+
+@register_dut
+class MeasuredResponseDUT(DUTModel):
+    """A board replayed from a stored run (see the module doc)."""
+
+    name = "measured_response"
+    description = "a stored run's measured response, noise and channel mismatch (replay)"
+    Params = MeasuredParams
+
+    def __init__(self, params: MeasuredParams) -> None:
+        from loopwright.errors import LoopwrightError
+        from loopwright.store import load_run
+        from loopwright.store.load import mismatch_at
+
+        super().__init__(params)
+        try:
+            run = load_run(params.run)
+            response = run.response_for(params.step)
+        except LoopwrightError as exc:
+            err = ValueError(f"cannot replay {params.run}: {exc}")
+            err.field = "run"  # type: ignore[attr-defined]
+            raise err from exc
+        self.run_path = Path(params.run)
+        self.sign = run.sign
+        self.response = response
+        f = np.asarray(response.frequency_hz, dtype=float)
+        self.frequency_range_hz = (float(f[0]), float(f[-1]))
+        calibration = run.calibration if params.mismatch else None
+        self.has_mismatch = calibration is not None
+
+        def steady(frequency_hz: np.ndarray) -> np.ndarray:
+            held = hold_outside(frequency_hz, *self.frequency_range_hz)
+            raw = self.sign * response.interpolate(held)
+            if calibration is not None:
+                raw = raw * mismatch_at(held, *calibration)
+            return raw
+
+        self._steady = steady
+        self.model_method = response.model().method
+        if params.transient == "auto":
+            rational, note = transient_model(f, steady(f))
+        else:
+            rational, note = None, "transients off (transient: none)"
+        self.transient_note = note
+        if rational is None:
+            rational = Rational.constant(1.0)
+        self._channel2 = _MeasuredRational(rational.num, rational.den, steady=steady)
+        points = run.points
+        if params.step is not None:
+            points = points[points["step"] == params.step]
+        elif not points.empty:
+            points = points[points["step"] == run.steps[-1]]
+        if params.noise and not points.empty:
+            self.channel_noise_v_rms = (
+                channel_noise_v_rms(points["reference_amplitude_v"], points["reference_snr_db"],
+                                    points["reference_scale_v_per_div"]),
+                channel_noise_v_rms(points["response_amplitude_v"], points["response_snr_db"],
+                                    points["response_scale_v_per_div"]))
+        else:
+            self.channel_noise_v_rms = (0.0, 0.0)
+
+    @classmethod
+    def from_run(cls, run_dir: str | Path, **options: Any) -> MeasuredResponseDUT:
+        """Build the board of a run folder (options: ``step``, ``mismatch``, ``noise``,
+        ``transient``).
+
+        Raises
+        ------
+        InputError
+            The folder is not a run, or its chosen step has fewer than 2 points.
+        """
+        params = MeasuredParams(run=str(run_dir), **options)
+        try:
+            return cls(params)
+        except ValueError as exc:
+            raise InputError(str(exc), path=str(run_dir)) from exc
+
+    def describe(self) -> dict[str, Any]:
+        """What the replay modelled, for the manifest."""
+        lo, hi = self.frequency_range_hz
+        return {
+            "run": str(self.run_path),
+            "step": self.params.step,
+            "frequency_range_hz": [lo, hi],
+            "outside_range": "end values held",
+            "steady_state": f"FrequencyResponse.interpolate ({self.model_method})",
+            "transient": self.transient_note,
+            "channel_noise_v_rms": list(self.channel_noise_v_rms),
+            "channel_mismatch": "calibration.csv on the response channel"
+            if self.has_mismatch else None,
+        }
+
+    def probe_transfer_functions(self) -> tuple[Rational, Rational]:
+        return Rational.constant(1.0), self._channel2
+
+    def loop_response(self, frequency_hz) -> np.ndarray:
+        f = np.asarray(frequency_hz, dtype=float)
+        return np.asarray(self._steady(np.atleast_1d(f))).reshape(f.shape)
