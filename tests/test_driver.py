@@ -476,3 +476,25 @@ def test_bad_templates_refused_with_line(tmp_path, line, message):
         load_driver(path)
     assert info.value.line == expected_line
     assert info.value.field == "commands.set_frequency"  # a single template, not a list
+
+
+def test_number_placeholder_without_limits_refused_with_line(tmp_path):
+    # {full_range_v} is sent as a number: the file must give it limits under values
+    source = get_driver("scope-text").path.read_text()
+    lines = source.splitlines(keepends=True)
+    kept = [x for x in lines if not x.startswith("  full_range_v:")]
+    assert len(kept) == len(lines) - 1
+    text = "".join(kept)
+    path = tmp_path / "no-range.yaml"
+    path.write_text(text)
+    expected_line = text.splitlines().index("    - ':INP{channel}:RANG {full_range_v}'") + 1
+    with pytest.raises(InputError, match="give it limits") as info:
+        load_driver(path)
+    assert (info.value.line, info.value.field) == (expected_line, "commands.set_channel[1]")
+
+
+def test_init_error_closes_session_and_raises(recorder):
+    recorder.identity = _simulated("generator", "generator-source-tree")
+    recorder.reject["SOUR1:VOLT:UNIT VPP"] = '-113,"Undefined header"'
+    with pytest.raises(SCPIError, match="Undefined header"):
+        open_instrument(recorder.resource, "generator", timeout_s=2.0)
