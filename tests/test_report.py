@@ -371,23 +371,6 @@ def test_frd_margins_agree_with_summary(amplifier_run):
     assert 20 * np.log10(gm) == pytest.approx(20 * np.log10(2), abs=0.02)
 
 
-def test_frd_without_control_names_the_extra(monkeypatch, amplifier_run):
-    import builtins
-
-    real_import = builtins.__import__
-
-    def no_control(name, *args, **kwargs):
-        if name == "control" or name.startswith("control."):
-            raise ImportError("No module named 'control'")
-        return real_import(name, *args, **kwargs)
-
-    monkeypatch.setattr(builtins, "__import__", no_control)
-    from loopwright.errors import LoopwrightError
-
-    with pytest.raises(LoopwrightError, match=r"pip install 'loopwright\[control\]'"):
-        load_run(amplifier_run).to_frd()
-
-
 # --- export ------------------------------------------------------------------------------
 
 
