@@ -13,7 +13,7 @@ import time
 
 import pytest
 
-from loopwright.errors import ConnectionLost, InstrumentTimeout, SCPIError
+from loopwright.errors import ConnectionLost, InstrumentError, InstrumentTimeout, SCPIError
 from loopwright.instruments.block import encode_block
 from loopwright.instruments.session import Session, parse_error_reply
 
@@ -48,6 +48,9 @@ class _Handler(socketserver.StreamRequestHandler):
                     reply = "late"
                 elif line == "FAST?":
                     reply = "fast"
+                elif line == "GARBLE?":
+                    self.wfile.write(b"\xff\xfe\x80\n")
+                    continue
                 elif line == "BAD":
                     server.errors += ['-113,"Undefined header"', '-222,"Data out of range"']
                     continue
@@ -112,6 +115,14 @@ def test_timeout_then_stale_reply_is_not_taken_for_next_answer(server):
         session.timeout_s = 2.0
         # the late "late" arrives now; the next answer must still be "fast"
         assert session.query("FAST?") == "fast"
+        assert session.query("FAST?") == "fast"
+
+
+def test_garbled_reply_is_our_error_and_stream_recovers(server):
+    with Session(_resource(server), timeout_s=2.0) as session:
+        with pytest.raises(InstrumentError, match="not text") as info:
+            session.query("GARBLE?")
+        assert isinstance(info.value.__cause__, UnicodeDecodeError)
         assert session.query("FAST?") == "fast"
 
 
