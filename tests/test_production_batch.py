@@ -13,6 +13,7 @@ import io
 import json
 import multiprocessing
 import sqlite3
+import time
 from pathlib import Path
 
 import numpy as np
@@ -348,9 +349,10 @@ def test_three_processes_share_one_sqlite_index(files, tmp_path: Path) -> None:
     procedure, bench = files
     shared = tmp_path / "shared" / "index.sqlite"
     per_station = 6
+    start_at = time.time() + 4.0  # after every spawned worker has imported
     jobs = [
         (str(procedure), str(bench), str(tmp_path / f"out{k}"), str(shared), f"st{k}",
-         per_station)
+         per_station, start_at)
         for k in range(3)
     ]
     ctx = multiprocessing.get_context("spawn")

@@ -174,20 +174,23 @@ def test_scaffold_figures_match_python_control(dc_gain: float) -> None:
     assert wpc > wgc  # stable: phase crossover above gain crossover
 
 
-def batch_worker(job: tuple[str, str, str, str, str, int]) -> int:
+def batch_worker(job: tuple[str, str, str, str, str, int, float]) -> int:
     """One station's batch in its own process: ``count`` boards into a shared index.
 
     ``job`` = (procedure file, bench file, out folder, index URL or path, station,
-    count). Used by
+    count, start time as ``time.time()``: every worker waits for it, so the stations
+    really write at once). Used by
     the concurrency tests (SQLite file and PostgreSQL); returns boards run.
     """
     import io
+    import time
 
     from rich.console import Console
 
     from loopwright.production.batch import run_batch
 
-    procedure, bench, out_dir, index_url, station, count = job
+    procedure, bench, out_dir, index_url, station, count, start_at = job
+    time.sleep(max(0.0, start_at - time.time()))
     runner = AnalyticBoardRunner(Path(procedure), station=station)
     serials = "".join(f"{station}-SN{i:04d}\n" for i in range(count)) + "\n"
     summary = run_batch(
