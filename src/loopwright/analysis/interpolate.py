@@ -134,15 +134,24 @@ def _fit_rational(z: ComplexArray, h: ComplexArray) -> AAA:
 
 
 def _spurious_poles(fit: AAA, z: ComplexArray, h: ComplexArray) -> int:
-    """Number of poles whose pull on the nearest data point is negligible."""
+    """Number of poles near the data whose pull on the nearest point is negligible.
+
+    Such a pole (with its nearby zero, a Froissart doublet) can put a spike between
+    two samples that no sample shows. One farther from the data than the local point
+    spacing acts between the samples as it acts on them: harmless, so not counted.
+    """
     poles = fit.poles()
     if poles.size == 0:
         return 0
     residues = fit.residues()
     distance = np.abs(poles[:, None] - z[None, :])
     nearest = np.argmin(distance, axis=1)
-    pull = np.abs(residues) / distance[np.arange(poles.size), nearest]
-    return int(np.count_nonzero(pull < DOUBLET_TOLERANCE * np.abs(h[nearest])))
+    closest = distance[np.arange(poles.size), nearest]
+    gaps = np.abs(np.diff(z))
+    spacing = np.maximum(gaps[np.clip(nearest - 1, 0, gaps.size - 1)],
+                         gaps[np.clip(nearest, 0, gaps.size - 1)])
+    weak = np.abs(residues) / closest < DOUBLET_TOLERANCE * np.abs(h[nearest])
+    return int(np.count_nonzero(weak & (closest < spacing)))
 
 
 def _pchip(frequency_hz: FloatArray, h: ComplexArray, reason: str,
