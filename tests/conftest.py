@@ -182,3 +182,14 @@ def start_inprocess_bench() -> Iterator[Callable[..., InProcessBench]]:
 def inprocess_bench(start_inprocess_bench: Callable[..., InProcessBench]) -> InProcessBench:
     """A default in-process simulated bench."""
     return start_inprocess_bench()
+
+
+def pytest_terminal_summary(terminalreporter: Any) -> None:
+    """Print the reliability table when the fault-injection tests ran."""
+    import sys
+
+    for name, module in list(sys.modules.items()):
+        if name.endswith("test_reliability") and getattr(module, "RESULTS", None):
+            terminalreporter.write_line("")
+            for line in module.table_lines():
+                terminalreporter.write_line(line)
