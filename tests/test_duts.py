@@ -229,3 +229,13 @@ def test_unknown_name_and_bad_override():
     with pytest.raises(InputError) as info:
         load_dut("wien", gain=-1)
     assert info.value.field == "gain"
+
+
+def test_opamp_output_limit_is_a_soft_swing_limit():
+    dut = load_dut("opamp_capload", output_limit_v=3.0)
+    system = dut.loop_system()
+    # Stage input 1 V would ask 1e5 V: the tanh stage holds it at the 3 V swing.
+    assert system.stage(np.array([1.0]))[0] == pytest.approx(-3.0)
+    # Small signals see the unchanged small-signal loop.
+    f = np.logspace(1, 7, 13)
+    np.testing.assert_allclose(dut.loop_response(f), load_dut("opamp_capload").loop_response(f))

@@ -5,7 +5,8 @@ resistance ``Ro`` into ``C_L`` adds a third pole at ``1/(Ro C_L)``, which eats p
 margin (a real-world cause of ringing). The loop is broken at the inverting input: the
 generator drives it (channel 1) and the output returns (channel 2); the follower's
 inversion is included, so ``H(s) = -A(s) / (1 + s Ro C_L)``. Invented defaults: 100 dB,
-poles at 20 Hz and 8 MHz (2 MHz gain-bandwidth), 60 Ohm into 1 nF.
+poles at 20 Hz and 8 MHz (2 MHz gain-bandwidth), 60 Ohm into 1 nF, no output limit
+(``output_limit_v`` adds a soft output swing limit).
 """
 
 from __future__ import annotations
@@ -29,6 +30,7 @@ class OpampParams(DUTParams):
     pole2_hz: float = Field(8e6, gt=0)
     output_resistance_ohm: float = Field(60.0, ge=0)
     load_capacitance_f: float = Field(1e-9, ge=0)
+    output_limit_v: float | None = Field(None, gt=0)
 
 
 @register_dut
@@ -54,4 +56,7 @@ class OpampCapLoad(DUTModel):
         return np.ones_like(a), -a * load
 
     def stage_gain_and_limit(self) -> tuple[float, float | None]:
-        return -1.0, None
+        # The gain stage is the whole open-loop gain; its output swings softly to
+        # +- output_limit_v (None: linear). With a limit, a broken-loop measurement
+        # saturates unless the stimulus is tiny, as on a real op-amp.
+        return -self.params.dc_gain, self.params.output_limit_v

@@ -90,8 +90,13 @@ class RationalParams(DUTParams):
             den = np.trim_zeros(np.asarray(self.denominator, float), "f")
             if num.size > den.size:
                 raise ValueError("improper: the numerator's degree exceeds the denominator's")
-        if zpk and len(self.zeros_hz or []) > len(self.poles_hz or []):
-            raise ValueError("more zeros than poles (improper transfer function)")
+        if zpk:
+            zeros = _complete_pairs([_parse_root(r) for r in self.zeros_hz or []])
+            poles = _complete_pairs([_parse_root(r) for r in self.poles_hz or []]) \
+                if self.poles_hz is not None else [0j] * 3
+            if len(zeros) > len(poles):
+                raise ValueError("more zeros than poles (improper transfer function); "
+                                 "a complex root counts twice (its conjugate is added)")
         return self
 
 
