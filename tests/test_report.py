@@ -548,24 +548,28 @@ def _chromium() -> str | None:
     return None
 
 
-@pytest.mark.browser
-def test_chromium_renders_the_report(oscillator_report, tmp_path):
+def _headless(tmp_path: Path, *options: str, page: Path) -> subprocess.CompletedProcess:
     browser = _chromium()
     if browser is None:
         if os.environ.get("CI") == "true":
             pytest.fail("chromium is missing in CI (.ci/run installs Debian's chromium)")
         pytest.skip("chromium is not installed here (apt-get install chromium); "
                     "CI installs it and runs this test")
-    shot = tmp_path / "shot.png"
     command = [
         browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
         "--no-first-run", "--disable-background-networking", "--disable-component-update",
-        "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}",
-        f"--screenshot={shot}", "--window-size=1200,1600",
-        oscillator_report.html.resolve().as_uri(),
+        "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}", *options,
+        page.resolve().as_uri(),
     ]
-    result = subprocess.run(command, capture_output=True, text=True, timeout=90,
-                            stdin=subprocess.DEVNULL, check=False)
+    return subprocess.run(command, capture_output=True, text=True, timeout=90,
+                          stdin=subprocess.DEVNULL, check=False)
+
+
+@pytest.mark.browser
+def test_chromium_renders_the_report(oscillator_report, tmp_path):
+    shot = tmp_path / "shot.png"
+    result = _headless(tmp_path, f"--screenshot={shot}", "--window-size=1200,1600",
+                       page=oscillator_report.html)
     assert shot.is_file(), f"no screenshot; chromium said: {result.stderr[-2000:]}"
     image = mpimg.imread(shot)
     assert image.shape[:2] == (1600, 1200)
@@ -576,3 +580,16 @@ def test_chromium_renders_the_report(oscillator_report, tmp_path):
     plot = image[300:1100, 60:1140]
     assert np.any(plot[..., :3] < 0.85, axis=2).mean() > 0.03
     assert _has_colour(plot, palette.PHASE_COLOUR, tolerance=0.1)
+
+
+@pytest.mark.browser
+def test_chromium_prints_the_report_on_several_pages(amplifier_report, tmp_path):
+    pdf = tmp_path / "report.pdf"
+    result = _headless(tmp_path, f"--print-to-pdf={pdf}", "--no-pdf-header-footer",
+                       page=amplifier_report.html)
+    assert pdf.is_file(), f"no PDF; chromium said: {result.stderr[-2000:]}"
+    data = pdf.read_bytes()
+    assert data.startswith(b"%PDF")
+    pages = len(re.findall(rb"/Type\s*/Page(?!s)", data))
+    # Header, verdict and Bode plot; provenance and the points table start new pages.
+    assert pages >= 3

@@ -37,6 +37,7 @@ th, td {{ border: 1px solid #B0B0B0; padding: 3px 7px; text-align: left;
   vertical-align: top; }}
 th {{ background: #EFEFEF; }}
 td.num, th.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
+td.num {{ white-space: nowrap; }}
 thead {{ display: table-header-group; }}
 tr {{ break-inside: avoid; page-break-inside: avoid; }}
 .banner {{ border: 3px solid; padding: 10px 14px; margin: 12px 0; }}
