@@ -531,7 +531,9 @@ def test_bad_run_folder_is_one_line_exit_2(breakage, expected, amplifier_run, tm
     elif breakage == "missing_column":
         table = pd.read_csv(run / "points.csv").drop(columns=["phase_deg"])
         table.to_csv(run / "points.csv", index=False)
-    for command in (["report", str(run)], ["export", str(run), "--format", "csv"]):
+    for command in (["report", str(run)], ["export", str(run), "--format", "csv"],
+                    ["compare", str(amplifier_run), str(run), "--out",
+                     str(tmp_path / "c.html")]):
         assert main(command) == 2
         err = capsys.readouterr().err.strip()
         assert len(err.splitlines()) == 1 and expected in err and "Traceback" not in err
