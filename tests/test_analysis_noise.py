@@ -118,3 +118,17 @@ def test_scatter_estimate_recovers_the_noise_std() -> None:
     gain_std, phase_std = np.mean(estimates, axis=0)
     assert gain_std == pytest.approx(0.1, rel=0.15)
     assert phase_std == pytest.approx(0.5, rel=0.15)
+
+
+def test_noise_makes_no_resonances() -> None:
+    # A loop without a resonance (4/(s+1)^3, references.md) and 0.5 dB of gain noise:
+    # no peak stands out by 6 sigma, so none is reported.
+    rng = np.random.default_rng(12)
+    f = np.logspace(-2, 2, 81) * F_SCALE_HZ
+    s = 1j * f / F_SCALE_HZ
+    h = -4 / (s + 1) ** 3 * 10 ** (rng.normal(0, 0.5, f.size) / 20)
+    figures = analyze_loop(FrequencyResponse(f, h, np.full(f.size, 0.5), np.full(f.size, 1.0)))
+    assert figures.resonances == ()
+    no_std = analyze_loop(FrequencyResponse(f, h))
+    assert no_std.uncertainty_source == "scatter estimate and model"
+    assert no_std.resonances == ()

@@ -36,7 +36,8 @@ FloatArray = NDArray[np.float64]
 
 #: Grid points per sample interval searched when the model is trusted.
 SUBDIVISIONS_TRUSTED = 16
-#: A gain peak must stand this many dB above its surroundings to count as a resonance.
+#: A gain peak must stand this many dB (and 6 sigma of the gain) above its
+#: surroundings to count as a resonance.
 RESONANCE_PROMINENCE_DB = 1.0
 #: Largest low-frequency slope (dB/decade) for which a -3 dB bandwidth applies.
 FLAT_SLOPE_DB_PER_DECADE = 2.0
@@ -359,7 +360,10 @@ def _pole_pair_q(model: ResponseModel, frequency_hz: float) -> float | None:
 
 def _resonances(curve: _Curve) -> list[Resonance]:
     gain_db = _DB_PER_NEPER * np.log(np.abs(curve.grid_h))
-    peaks, _ = find_peaks(gain_db, prominence=RESONANCE_PROMINENCE_DB)
+    # Noise must not pass for a resonance: ask for 6 sigma of the gain's scatter too
+    # (a peak and a dip of noise, 3 sigma each, are this far apart).
+    noise_db = float(np.median(curve.gain_db_std)) if curve.gain_db_std.size else 0.0
+    peaks, _ = find_peaks(gain_db, prominence=max(RESONANCE_PROMINENCE_DB, 6.0 * noise_db))
     found = []
     for i in peaks:
         a, b = curve.grid[max(i - 1, 0)], curve.grid[min(i + 1, curve.grid.size - 1)]
