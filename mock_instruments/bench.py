@@ -112,8 +112,13 @@ class _Channel:
 
     def __post_init__(self) -> None:
         A = self.system.A
+        self.unstable = False
         if self.system.order:
             eigvals, vecs = np.linalg.eig(A)
+            # A growing open-loop mode would overflow within seconds of bench time; it
+            # is left out of the transient (as if the DUT's bias held it), and only the
+            # steady response is shown.
+            self.unstable = bool(np.any(eigvals.real > 1e-9 * np.abs(eigvals)))
             if np.linalg.cond(vecs) < 1e8:
                 self.modes = (eigvals, vecs, np.linalg.inv(vecs))
 
@@ -142,11 +147,12 @@ class _Channel:
         if self.modes is not None:
             eigvals, vecs, inv = self.modes
             weights = (sys.C @ vecs) * (inv @ x0)
-            start = np.abs(weights) * np.exp(eigvals.real * dt[0])
+            keep = eigvals.real <= 1e-9 * np.abs(eigvals)
+            start = np.abs(weights[keep]) * np.exp(eigvals[keep].real * dt[0])
             floor_v = max(floor_v, 1e-17 * float(start.sum()), 1e-300)
             for lam, weight in zip(eigvals, weights, strict=True):
                 size = abs(weight)
-                if size == 0:
+                if size == 0 or lam.real > 1e-9 * abs(lam):
                     continue
                 count = dt.size
                 if lam.real < 0:
@@ -154,6 +160,8 @@ class _Channel:
                     count = int(np.searchsorted(dt, lasts_s, side="right"))
                 if count:
                     out[:count] += (weight * np.exp(lam * dt[:count])).real
+            return out
+        if self.unstable:
             return out
         # Not diagonalisable (repeated poles): step along the record with matrix
         # exponentials (one for the whole record when it is uniformly spaced).
@@ -177,7 +185,16 @@ class _Channel:
             return np.zeros(0)
         steady = self.steady_state(segment.drive, t_s)
         x0 = segment.homogeneous[index]
-        return steady + scipy.linalg.expm(self.system.A * max(t_s - segment.t0_s, 0.0)) @ x0
+        dt = max(t_s - segment.t0_s, 0.0)
+        if self.modes is not None:
+            eigvals, vecs, inv = self.modes
+            keep = eigvals.real <= 1e-9 * np.abs(eigvals)
+            growth = np.zeros(eigvals.shape, dtype=complex)
+            growth[keep] = np.exp(eigvals[keep] * dt)
+            return steady + (vecs @ (growth * (inv @ x0))).real
+        if self.unstable:
+            return steady
+        return steady + scipy.linalg.expm(self.system.A * dt) @ x0
 
 
 class SimulatedBench:

@@ -113,6 +113,19 @@ def test_repeated_poles_settle_and_measure_exactly():
     assert complex(dut.loop_response(np.sqrt(3) * 1000.0)) == pytest.approx(0.5, abs=1e-12)
 
 
+def test_unstable_open_loop_pole_shows_steady_response_without_overflow():
+    # An open loop with a right-half-plane pole: the bench keeps its growing mode out of
+    # the transient, so records stay finite after an hour of bench time.
+    dut = load_dut("rational", poles_hz=[200.0, -5000.0], dc_gain=2.0)
+    bench, clock = settled_bench(dut, 1e3)
+    bench.channels[2].scale_v_per_div = 1e9
+    clock.advance(3600.0)
+    bench.apply_generator(frequency_hz=2e3)
+    clock.advance(1.0)
+    exact = complex(dut.loop_response(2e3))
+    assert abs(measured_ratio(bench, 2e3) / exact - 1) < 1e-6
+
+
 def test_delay_and_distortion_free_record_is_a_clean_sine():
     dut = load_dut("rational", delay_s=3e-6)
     bench, _ = settled_bench(dut, 20e3)
