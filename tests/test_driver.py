@@ -246,7 +246,7 @@ def test_scope_block_exact_commands_and_volts(recorder):
     scope.set_channel(2, wide)
     assert scope.set_timebase(1000, 1.2e6) == 1e6
     scope.set_trigger(1, -0.25, "fall")
-    capture = scope.acquire([1, 2])
+    capture = scope.acquire(np.array([1, 2]))  # any sequence of channel numbers
     assert recorder.sent_since(mark) == [
         "CHAN1:PROB 10", "CHAN1:SCAL 0.5", "CHAN1:OFFS 0.1", "CHAN1:COUP AC", "SYST:ERR?",
         "CHAN1:PROB 1", "CHAN1:SCAL 10", "CHAN1:OFFS 0", "CHAN1:COUP DC", "SYST:ERR?",
@@ -328,6 +328,8 @@ BAD_SCOPE_CALLS = [
     ("set_trigger", (1, "0\n*RST", "rise")),
     ("acquire", ([1, 5],)),
     ("acquire", (["1;*RST"],)),
+    ("acquire", ([],)),
+    ("acquire", (1,)),
 ]
 
 

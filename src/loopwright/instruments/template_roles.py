@@ -412,8 +412,11 @@ class TemplateScope(TemplateInstrument):
 
     def acquire(self, channels: Sequence[int], timeout_s: float = 10.0) -> Capture:
         """One acquisition of ``channels`` on one trigger, read back in volts."""
-        if isinstance(channels, int | str) or not channels:
-            raise DriverError(f"channels must be a non-empty list, got {channels!r}")
+        if isinstance(channels, int | str | bytes) or not hasattr(channels, "__iter__"):
+            raise DriverError(f"channels must be a list of channel numbers, got {channels!r}")
+        channels = list(channels)
+        if not channels:
+            raise DriverError("channels must not be empty")
         texts = [self.channel(c) for c in channels]
         if not timeout_s > 0:
             raise DriverError(f"timeout_s must be positive, got {timeout_s!r}")
