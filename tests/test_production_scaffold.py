@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import re
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
@@ -24,6 +23,8 @@ from typing import Any
 
 import numpy as np
 import pytest
+
+from loopwright.store.names import safe_part
 
 POLES_HZ = (1e3, 60e3, 300e3)
 LIMITS = (
@@ -40,7 +41,6 @@ POINT_COLUMNS = (
     "reference_scale_v_per_div", "response_scale_v_per_div", "sample_rate_hz",
     "record_length", "averages", "refined", "flags",
 )
-_UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
 
 
 def open_loop(frequency_hz: np.ndarray, dc_gain: float) -> np.ndarray:
@@ -98,7 +98,7 @@ class AnalyticBoardRunner:
         self.calls.append((serial, retest))
         started = self.first_start_utc + timedelta(hours=len(self.calls) - 1)
         ended = started + timedelta(seconds=42)
-        part = _UNSAFE.sub("_", serial).lstrip(".")[:64] or "unnamed"
+        part = safe_part(serial)  # the run folder's own rule, as the runner uses it
         name = f"{started.strftime('%Y%m%dT%H%M%SZ')}_scaffold-loop_{part}"
         run_dir = Path(out_dir) / name
         run_dir.mkdir(parents=True, exist_ok=False)

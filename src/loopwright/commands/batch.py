@@ -39,8 +39,13 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
 
-    from loopwright.procedure.runner import run_procedure_for_serial
+    from loopwright.errors import RunError
     from loopwright.production.batch import run_batch
+
+    try:
+        from loopwright.procedure.runner import run_procedure_for_serial
+    except ImportError as exc:  # a partial install: say so in one line
+        raise RunError(f"the procedure runner cannot be loaded: {exc}") from exc
 
     station = args.station or socket.gethostname()
     run_one = functools.partial(

@@ -7,7 +7,8 @@ the results index and one line to ``batch.csv``, and asks for the next serial. A
 empty line, the end of the input or Ctrl-C ends the batch; the summary is returned.
 
 ``run_one(serial, *, retest, out_dir) -> (run_dir, summary)`` measures one board and
-writes its run folder (``summary`` is the content of its ``summary.json``). It is
+writes its run folder (``summary`` is the content of its ``summary.json``, or None
+when the run ended without one; Ctrl-C during a run arrives as KeyboardInterrupt). It is
 expected to turn the generator output off itself, also on error or Ctrl-C.
 """
 
@@ -44,7 +45,7 @@ class RunOne(Protocol):
 
     def __call__(
         self, serial: str, *, retest: bool, out_dir: Path
-    ) -> tuple[Path | str, dict[str, Any]]: ...
+    ) -> tuple[Path | str, dict[str, Any] | None]: ...
 
 
 @dataclass
@@ -328,6 +329,11 @@ def _one_board(
     except LoopwrightError as exc:
         return BoardResult(serial, retest, "error", message=f"the run did not finish: {exc}")
     folder = Path(run_dir).resolve()
+    if summary is None:  # the run ended without analysis (failed part-way)
+        return BoardResult(
+            serial, retest, "error", run_dir=str(folder),
+            message=f"the run ended without a summary; see {folder / 'manifest.json'}",
+        )
     if not folder.is_relative_to(out.resolve()):
         # The serial must never steer where files go; refuse to index such a run.
         return BoardResult(

@@ -8,20 +8,15 @@ as read (:func:`clean_serial`).
 
 from __future__ import annotations
 
-import re
 import unicodedata
 
 from loopwright.errors import InputError
+from loopwright.store.names import MAX_PART_CHARS, safe_part
 
 #: Longest serial accepted, in characters (a longer line is a misread or a pasted text).
 MAX_SERIAL_CHARS = 128
 #: Longest folder-safe part, in characters (run-folder contract).
-MAX_FOLDER_PART_CHARS = 64
-
-#: What a name with nothing usable in it becomes.
-EMPTY_NAME = "unnamed"
-
-_UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
+MAX_FOLDER_PART_CHARS = MAX_PART_CHARS
 
 
 def clean_serial(line: str) -> str:
@@ -60,23 +55,12 @@ def clean_serial(line: str) -> str:
 def folder_safe(text: str, max_chars: int = MAX_FOLDER_PART_CHARS) -> str:
     """A form of ``text`` that can be one part of a folder name on any file system.
 
-    The run-folder rule: every character outside ``[A-Za-z0-9._-]`` becomes ``_``
-    (path separators, control characters, spaces, non-ASCII letters), leading dots
-    are dropped (no hidden folders, no ``..``), the result is cut to ``max_chars``,
-    and a name with nothing but ``_`` left becomes ``unnamed``. Path separators never
+    The run folder's own rule (:func:`loopwright.store.names.safe_part`, so the index
+    and the folder agree): every character outside ``[A-Za-z0-9._-]`` becomes ``_``
+    (path separators, control characters, spaces, non-ASCII letters), leading dots are
+    dropped (no hidden folders, no ``..``), the result is cut to ``max_chars``, and a
+    name with nothing but ``_`` left becomes ``unnamed``. Path separators never
     survive, so the result cannot leave its parent folder.
-
-    Parameters
-    ----------
-    text
-        Any string, e.g. a board serial.
-    max_chars
-        Longest result.
-
-    Returns
-    -------
-    str
-        A non-empty name.
 
     Examples
     --------
@@ -85,5 +69,4 @@ def folder_safe(text: str, max_chars: int = MAX_FOLDER_PART_CHARS) -> str:
     >>> folder_safe("a/b")
     'a_b'
     """
-    safe = _UNSAFE.sub("_", text).lstrip(".")[:max_chars]
-    return safe if safe.strip("_") else EMPTY_NAME
+    return safe_part(text, max_chars=max_chars)
