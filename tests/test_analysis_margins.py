@@ -285,3 +285,17 @@ def test_figures_follow_a_frequency_scale(index, decades) -> None:
     for a, b in zip(base.zero_phase_crossings, scaled.zero_phase_crossings, strict=True):
         assert b.frequency_hz == pytest.approx(a.frequency_hz * k, rel=1e-6)
         assert b.gain_margin_db == pytest.approx(a.gain_margin_db, abs=1e-6)
+
+
+def test_two_crossovers_inside_one_sample_interval() -> None:
+    # python-control stability_margins: a sharp pair (zeta 0.0109) whose peak just
+    # touches |L| = 1 gives two crossovers 0.7 % apart, both between two samples of an
+    # 8-per-decade sweep; the trusted model is searched finely around its sharp poles.
+    wn, zeta, pole, gain = 3.6219, 0.010872, 10.467, 0.087486
+    system = (control.tf([gain], [1, 0]) * control.tf([wn * wn], [1, 2 * zeta * wn, wn * wn])
+              * control.tf([1], [1 / pole, 1]))
+    f = _sweep(-3, 3)
+    reference = _reference(system, f)
+    assert len(reference["crossover_hz"]) == 3
+    assert np.diff(reference["crossover_hz"])[-1] / reference["crossover_hz"][-1] < 0.01
+    _check(analyze_loop(FrequencyResponse(f, _measured(system, f))).to_dict(), reference)

@@ -241,8 +241,28 @@ class _Curve:
         sub = SUBDIVISIONS_TRUSTED if model.trusted else 1
         t = np.linspace(0.0, 1.0, sub, endpoint=False)
         grid = (self.xs[:-1, None] + np.diff(self.xs)[:, None] * t[None, :]).ravel()
-        self.grid = np.append(grid, self.xs[-1])
+        grid = np.append(grid, self.xs[-1])
+        if model.trusted:
+            grid = np.union1d(grid, self._near_sharp_poles())
+        self.grid = grid
         self.grid_h = self.h(self.grid)
+
+    def _near_sharp_poles(self) -> FloatArray:
+        """Extra grid points around the model's lightly damped poles.
+
+        Near a sharp resonance |H| and angle(H) change within a fraction of the -3 dB
+        width, so two crossings can sit closer than the regular grid; search there finely.
+        """
+        poles = self.model.poles_hz
+        sharp = poles[(poles.imag > 0) & (np.abs(poles.real) < 0.25 * poles.imag)]
+        extra = [
+            np.log(p.imag) + np.linspace(-8.0, 8.0, 129) * abs(p.real) / p.imag
+            for p in sharp
+        ]
+        if not extra:
+            return np.empty(0)
+        points = np.concatenate(extra)
+        return points[(points > self.lo) & (points < self.hi)]
 
     def h(self, x: FloatArray | float) -> NDArray[np.complex128]:
         return self.model(np.exp(np.clip(x, self.lo, self.hi)))
