@@ -35,7 +35,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Literal
 
@@ -44,7 +44,7 @@ from pydantic import Field
 
 from loopwright.errors import InputError
 from mock_instruments.duts import register_dut
-from mock_instruments.duts.base import DUTModel, DUTParams
+from mock_instruments.duts.base import DUTModel, DUTParams, LoopSystem
 from mock_instruments.lti import Rational, StateSpace
 
 #: Largest relative rms misfit of the transient model to the data (else no transient).
@@ -58,6 +58,8 @@ POLE_MATCH = 2e-2
 RATIONAL_TOLERANCES = (1e-4, 1e-3, 1e-2, 3e-2)
 #: Most terms of the transient fit (a board of higher order is not expected).
 MAX_TRANSIENT_TERMS = 14
+#: Closed-loop soft limit when the run stored no oscillation amplitude (invented).
+DEFAULT_CLOSED_LOOP_LIMIT_V = 1.0
 #: The simulated scope's ADC (quantisation noise taken out of the stored noise).
 SIM_ADC_BITS = 12
 SCREEN_DIVISIONS = 8
@@ -104,6 +106,36 @@ def channel_noise_v_rms(amplitude_v: np.ndarray, snr_db: np.ndarray,
     if not np.any(good):
         return 0.0
     return float(np.sqrt(np.median(variance[good])))
+
+
+def tanh_describing_gain(drive_over_limit: float, points: int = 256) -> float:
+    """Fundamental gain of ``w = L tanh(v / L)`` for ``v = A sin(theta)``, ``a = A / L``.
+
+    The describing function of a soft limiter (Gelb & Vander Velde, "Multiple-input
+    describing functions", 1968 (mem)): 1 for small ``a``, falling towards
+    ``4 / (pi a)`` (the ideal limiter's) for large ``a``.
+    """
+    a = float(drive_over_limit)
+    if a <= 0:
+        return 1.0
+    theta = 2 * np.pi * (np.arange(points) + 0.5) / points
+    return float(2.0 * np.mean(np.tanh(a * np.sin(theta)) * np.sin(theta)) / a)
+
+
+def limit_for_amplitude(amplitude_v: float, loop_gain: float) -> float | None:
+    """The soft limit at which a loop of small-signal gain ``loop_gain`` (> 1) settles
+    at ``amplitude_v`` on its stage input (describing-function balance ``K N(a) = 1``).
+
+    None when the numbers cannot give a balance (no oscillation, no amplitude).
+    """
+    from scipy.optimize import brentq
+
+    if not (np.isfinite(amplitude_v) and np.isfinite(loop_gain)) or amplitude_v <= 0 \
+            or loop_gain <= 1.0:
+        return None
+    target = 1.0 / loop_gain
+    a = brentq(lambda x: tanh_describing_gain(x) - target, 1e-9, 1e9, xtol=1e-12)
+    return float(amplitude_v / a)
 
 
 def _real_pole_set(poles: np.ndarray) -> list[complex]:
@@ -233,13 +265,35 @@ def _try_transient_model(f: np.ndarray, h: np.ndarray, rtol: float
     weight = 1.0 / np.abs(h)
     rows = np.concatenate([(basis * weight[:, None]).real, (basis * weight[:, None]).imag])
     rhs = np.concatenate([(h * weight).real, (h * weight).imag])
-    coeffs, *_ = np.linalg.lstsq(rows, rhs, rcond=None)
-    model = _rational_from_basis(coeffs, poles, w_ref)
-    misfit = float(np.sqrt(np.mean(np.abs(model.at_hz(f) / h - 1.0) ** 2)))
-    if not np.isfinite(misfit) or misfit > MAX_TRANSIENT_MISFIT:
-        return None, f"the rational model misses the data by {misfit:.2g} (relative rms)"
-    return model, (f"transients from a rational model with {model.den.size - 1} poles,"
-                   f" {misfit:.2g} relative rms from the data")
+    misfit = math.inf
+    # Strictly proper first (no feed-through: a closed loop needs no extra fast pole),
+    # then with a constant term for responses that flatten out at the top.
+    for first in (1, 0):
+        coeffs = np.zeros(rows.shape[1])
+        coeffs[first:], *_ = np.linalg.lstsq(rows[:, first:], rhs, rcond=None)
+        model = _rational_from_basis(coeffs, poles, w_ref)
+        misfit = float(np.sqrt(np.mean(np.abs(model.at_hz(f) / h - 1.0) ** 2)))
+        if np.isfinite(misfit) and misfit <= MAX_TRANSIENT_MISFIT:
+            return model, (f"transients from a rational model with {model.den.size - 1}"
+                           f" poles, {misfit:.2g} relative rms from the data")
+    return None, f"the rational model misses the data by {misfit:.2g} (relative rms)"
+
+
+def _closed_loop_limit(summary: dict[str, Any] | None) -> tuple[float, str]:
+    """The closed loop's soft limit from a stored run's closed-loop result, and why."""
+    summary = summary or {}
+    closed = summary.get("closed_loop") or {}
+    analysis = summary.get("analysis") or {}
+    amplitude = closed.get("amplitude_v") if closed.get("oscillating") else None
+    gain = analysis.get("excess_gain")
+    if amplitude is not None and gain is not None:
+        limit = limit_for_amplitude(float(amplitude), float(gain))
+        if limit is not None:
+            return limit, (f"soft limit {limit:.4g} V: settles at the stored {amplitude:.4g} V"
+                           f" with the stored excess gain {gain:.4g}")
+    return DEFAULT_CLOSED_LOOP_LIMIT_V, (
+        f"soft limit {DEFAULT_CLOSED_LOOP_LIMIT_V:g} V (invented: the run stored no "
+        "closed-loop amplitude)")
 
 
 # --------------------------------------------------------------------------- bench glue
@@ -316,6 +370,7 @@ class MeasuredResponseDUT(DUTModel):
         if rational is None:
             rational = Rational.constant(1.0)
         self._channel2 = _MeasuredRational(rational.num, rational.den, steady=steady)
+        self.closed_loop_limit_v, self.closed_loop_note = _closed_loop_limit(run.summary)
         points = run.points
         if params.step is not None:
             points = points[points["step"] == params.step]
@@ -359,10 +414,17 @@ class MeasuredResponseDUT(DUTModel):
             "channel_noise_v_rms": list(self.channel_noise_v_rms),
             "channel_mismatch": "calibration.csv on the response channel"
             if self.has_mismatch else None,
+            "closed_loop": self.closed_loop_note,
         }
 
     def probe_transfer_functions(self) -> tuple[Rational, Rational]:
         return Rational.constant(1.0), self._channel2
+
+    def loop_system(self) -> LoopSystem:
+        """The closed loop: the transient model with the soft limit of
+        :func:`limit_for_amplitude` (only here: the open-loop points already hold
+        whatever compression the board had)."""
+        return replace(super().loop_system(), limit=self.closed_loop_limit_v)
 
     def loop_response(self, frequency_hz) -> np.ndarray:
         f = np.asarray(frequency_hz, dtype=float)
