@@ -84,6 +84,7 @@ class ClosedLoopRun:
         self.x = x * start_noise_v / level
         self.t_s = float(t_start_s)
         self._discrete: dict[float, tuple] = {}
+        self._w_prev: float | None = None    # stage output one step back (for the hold)
 
     # --- integration ---------------------------------------------------------------------
     def _hold_matrices(self, h: float) -> tuple:
@@ -108,8 +109,9 @@ class ClosedLoopRun:
         """States and stage outputs at ``count`` + 1 points spaced ``h`` (first = ``x``).
 
         ``w`` across a step is the parabola through the previous, present and next stage
-        outputs (the first step uses a straight line); the next one is implicit and
-        solved by Newton's method on the loop voltage.
+        outputs (the very first step of the run uses a straight line); the next one is
+        implicit and solved by Newton's method on the loop voltage. ``x`` must be the
+        run's present state: the previous stage output is carried over between calls.
         """
         phi, g0, g1, g2 = self._hold_matrices(h)
         # Line through (w0, w_next):  x1 = phi x0 + (g0 - g1) w0 + g1 w_next.
@@ -125,7 +127,7 @@ class ClosedLoopRun:
         y = float(C @ x)
         w = limit * math.tanh(gain * y / limit) if limit is not None else gain * y
         stage_out[0] = w
-        w_prev = None
+        w_prev = self._w_prev
         for i in range(count):
             if w_prev is None:
                 partial = phi @ x + line_old * w
@@ -149,10 +151,17 @@ class ClosedLoopRun:
             y = float(C @ x)
             states[i + 1] = x
             stage_out[i + 1] = w
+        if count:
+            self._w_prev = w_prev
         return states, stage_out
 
     def advance_to(self, t_s: float) -> None:
-        """Run the loop up to ``t_s`` (at most ``max_advance_s`` of it is integrated)."""
+        """Run the loop up to the last step at or before ``t_s``.
+
+        The state's time stays on the step grid, so consecutive records continue one
+        trajectory. A gap longer than ``max_advance_s`` is integrated for that long
+        and the rest is skipped (the loop's time jumps to ``t_s``).
+        """
         gap = t_s - self.t_s
         if gap <= 0:
             return
@@ -161,14 +170,16 @@ class ClosedLoopRun:
             self.t_s = float(t_s)
             return
         span = min(gap, self.max_advance_s)
-        count = int(np.ceil(span / self.step_s))
-        self.x = self._steps(self.x, count, self.step_s)[0][-1]
-        self.t_s = float(t_s)
+        count = int(span // self.step_s)
+        if count:
+            self.x = self._steps(self.x, count, self.step_s)[0][-1]
+        self.t_s = float(t_s) if gap > self.max_advance_s else self.t_s + count * self.step_s
 
     def sample(self, times_s: list[np.ndarray]) -> list[np.ndarray]:
         """Loop voltage at each array of times (all at or after the loop's time).
 
-        The state ends at the first step at or after the last sample time, so the next
+        The grid starts at the loop's present step (at or before the first time) and
+        the state ends at the first step at or after the last sample time, so the next
         call continues from there.
         """
         t_min = min(float(t.min()) for t in times_s)
@@ -191,7 +202,6 @@ class ClosedLoopRun:
         self.t_s = float(grid_t[-1])
         return [_hermite(grid_t, values, slopes, t) for t in times_s]
 
-
     def _sample_exact(self, times_s: list[np.ndarray], t_max: float) -> list[np.ndarray]:
         """Stable linear loop: ``C expm(A_cl (t - t0)) x`` at every time."""
         out = [_modal(self._closed, self._C, self.x, t - self.t_s) for t in times_s]
@@ -206,16 +216,19 @@ def _modal(a: np.ndarray, c: np.ndarray, x0: np.ndarray, dt: np.ndarray) -> np.n
     if np.linalg.cond(vecs) < 1e8:
         weights = (c @ vecs) * np.linalg.solve(vecs, x0.astype(complex))
         return (np.exp(np.multiply.outer(dt, eigvals)) @ weights).real
-    # Uniform grid (a record): step with one matrix exponential.
+    # Not diagonalisable: step along the sorted times, with one matrix exponential for a
+    # uniformly spaced record.
     order = np.argsort(dt)
+    sorted_dt = dt[order]
+    steps = np.diff(sorted_dt)
+    uniform = steps.size == 0 or np.allclose(steps, steps.mean(), rtol=1e-9, atol=0)
+    phi = scipy.linalg.expm(a * steps.mean()) if uniform and steps.size else None
     out = np.empty(dt.shape)
-    x = scipy.linalg.expm(a * dt[order[0]]) @ x0
-    prev = dt[order[0]]
-    for i in order:
-        if dt[i] != prev:
-            x = scipy.linalg.expm(a * (dt[i] - prev)) @ x
-            prev = dt[i]
-        out[i] = c @ x
+    x = scipy.linalg.expm(a * sorted_dt[0]) @ x0
+    out[order[0]] = c @ x
+    for k in range(1, sorted_dt.size):
+        x = (phi if phi is not None else scipy.linalg.expm(a * steps[k - 1])) @ x
+        out[order[k]] = c @ x
     return out
 
 

@@ -222,3 +222,30 @@ def test_unstable_linear_loop_meets_the_rail():
     _, amplitude, _ = measure(bench, f0)
     beta = 1 / 3                      # Wien network at f0: the rail seen through it
     assert 0.5 * 15.0 * beta < amplitude < 1.3 * 15.0 * beta
+
+
+def test_consecutive_records_continue_one_trajectory():
+    # Two back-to-back records equal one record twice as long taken by an identical
+    # bench (same seed, same clock): the loop's state carries over between records.
+    # The clock starts at 0 so that float time resolution (1e-12 s at 5000 s) does not
+    # blur the comparison at 1.5 MHz.
+    dut = load_dut("lc_oscillator")
+    f0 = dut.resonance_hz()
+    fs = POINTS_PER_CYCLE * f0 * 1.37          # not a multiple of the step rate
+    n = 1500
+    joined = []
+    whole = None
+    for split in (True, False):
+        clock = FakeClock(0.0)
+        bench = SimulatedBench(dut, IDEAL, seed=9, clock=clock)
+        bench.set_loop_closed(True)
+        clock.advance(250 / f0)
+        if split:
+            start = clock.t_s
+            joined.append(bench.acquire(n, fs)[2])
+            clock.t_s = start + n / fs
+            joined.append(bench.acquire(n, fs)[2])
+        else:
+            whole = bench.acquire(2 * n, fs)[2]
+    amplitude = np.max(np.abs(whole))
+    np.testing.assert_allclose(np.concatenate(joined), whole, atol=1e-9 * amplitude)
