@@ -12,7 +12,6 @@ import math
 
 import numpy as np
 import scipy.fft
-import scipy.signal
 from numpy.typing import NDArray
 
 from loopwright.dsp.tonesums import data_sums
@@ -39,6 +38,10 @@ def make_window(name: str, n_samples: int) -> NDArray[np.float64]:
 
 @functools.lru_cache(maxsize=16)
 def _cached_window(name: str, n_samples: int) -> NDArray[np.float64]:
+    # imported here: scipy.signal takes about a second to import, and the command
+    # line should not pay for it unless a window is used
+    import scipy.signal.windows
+
     w = scipy.signal.windows.get_window(WINDOWS[name][0], n_samples, fftbins=True)
     w.flags.writeable = False
     return w
