@@ -324,10 +324,8 @@ def seed_frequency(
         peak = float(centre[i])
         here, left, right = mag[i], mag[i - 1], mag[i + 1]
     else:
-        import scipy.fft
-
         window = 0.5 - 0.5 * np.cos(bin_rad * np.arange(n_samples))
-        spec = np.abs(scipy.fft.rfft((y - mean) * window, workers=1))
+        spec = np.abs(np.fft.rfft((y - mean) * window))
         k_lo = max(int(np.floor(max(cycles - span, lo))), 1)
         k_hi = min(int(np.ceil(min(cycles + span, hi))), spec.size - 2)
         k = k_lo + int(np.argmax(spec[k_lo : k_hi + 1]))

@@ -11,7 +11,6 @@ import functools
 import math
 
 import numpy as np
-import scipy.fft
 from numpy.typing import NDArray
 
 from loopwright.dsp.tonesums import data_sums
@@ -88,7 +87,7 @@ def spectral_noise_var(
     segs = np.stack([y[s : s + seg_len] for s in starts])
     window = make_window(window_name, seg_len)
     segs = (segs - segs.mean(axis=1, keepdims=True)) * window
-    spec = np.abs(scipy.fft.rfft(segs, axis=1, workers=1)) ** 2
+    spec = np.abs(np.fft.rfft(segs, axis=1)) ** 2
     keep = np.ones(spec.shape[1], dtype=bool)
     guard = WINDOWS[window_name][1] + 2
     bins = theta * seg_len / (2 * math.pi) * np.arange(0, n_harm + 1)
