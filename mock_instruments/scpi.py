@@ -332,6 +332,9 @@ class SimulatedInstrument:
         self.lock = lock if lock is not None else threading.RLock()
         self.realtime = realtime
         self.clock = clock
+        #: Added to every reply's delay: models a real instrument's query turnaround
+        #: (a few ms on a LAN instrument, practice); 0 = as fast as the computation.
+        self.query_latency_s = 0.0
         self.event_status = 0
         self._opc_pending = False
         self.errors = ErrorQueue(on_error=self._note_error)
@@ -425,7 +428,7 @@ class SimulatedInstrument:
                 ready_s = max(ready_s, delay_s)
         if not replies:
             return None, 0.0
-        return b";".join(replies) + b"\n", ready_s
+        return b";".join(replies) + b"\n", ready_s + self.query_latency_s
 
     def _execute_unit(self, unit: str, path: list[str]) -> tuple[bytes | None, float, list[str]]:
         head, _, rest = unit.partition(" ")

@@ -162,27 +162,35 @@ def test_in_process_transport_gives_the_same_points(tmp_path):
 def test_refinement_reaches_crossover_with_fewer_points(tmp_path):
     """Adaptive refinement: crossover within 0.5 % with fewer points than uniform.
 
-    Reference: the model's exact crossover. The uniform plan is the coarsest log plan
-    whose crossover is within 0.5 % (searched below); refinement must beat its count.
+    Reference: the model's exact crossover. The sparse plan (one point per decade)
+    gets up to 4 points where the response crosses |H| = 1 or 0 deg; the uniform plan
+    is the coarsest log plan whose crossover is within 0.5 % (searched below).
+    Measured here: refined 8 points, uniform 9 (2.5 per decade); see README.
     """
     exact = exact_figures("rational", 100.0, 1e5)["phase_margin_frequency_hz"]
-    sparse = write_procedure(tmp_path, 100.0, 1e5, points_per_decade=3, refine=True,
-                             name="sparse")
-    summary = run(tmp_path / "r", sparse, write_bench(tmp_path, "rational", noise_v_rms=0.0))
-    refined_f = summary["analysis"]["phase_margin_frequency_hz"]
+    bench = write_bench(tmp_path, "rational", noise_v_rms=0.0)
+
+    def plan(name: str, ppd: float, refine: bool) -> Path:
+        path = write_procedure(tmp_path, 100.0, 1e5, points_per_decade=1, name=name)
+        text = path.read_text().replace("points_per_decade: 1", f"points_per_decade: {ppd}")
+        if refine:
+            text += ("    refine:\n      max_extra_points: 4\n      max_phase_step_deg: 60\n"
+                     "      max_gain_step_db: 30\n      near_crossings: true\n")
+        path.write_text(text)
+        return path
+
+    summary = run(tmp_path / "r", plan("sparse", 1, True), bench)
     refined_points = summary["points"]
-    assert refined_f == pytest.approx(exact, rel=0.005)
+    assert summary["analysis"]["phase_margin_frequency_hz"] == pytest.approx(exact, rel=0.005)
     uniform_points = None
-    for ppd in (3, 4, 6, 8, 12):
-        procedure = write_procedure(tmp_path, 100.0, 1e5, points_per_decade=ppd,
-                                    name=f"uniform{ppd}")
-        result = run(tmp_path / f"u{ppd}", procedure,
-                     write_bench(tmp_path, "rational", noise_v_rms=0.0))
+    for ppd in (1, 1.5, 2, 2.5, 3, 4, 6, 8):
+        result = run(tmp_path / f"u{ppd}", plan(f"uniform{int(ppd * 10)}", ppd, False), bench)
         if math.isclose(result["analysis"]["phase_margin_frequency_hz"], exact, rel_tol=0.005):
             uniform_points = result["points"]
             break
     print(f"refined: {refined_points} points; uniform of the same accuracy: {uniform_points}")
-    assert uniform_points is None or refined_points <= uniform_points
+    assert uniform_points is not None
+    assert refined_points < uniform_points
 
 
 def test_run_folder_is_complete(tmp_path):

@@ -288,11 +288,13 @@ class PointMeasurer:
         else:
             half = capture.record_length // 2
             try:
+                # three-parameter fits at the refined frequency: cheap, and a transient
+                # shows as a gain/phase change between the halves
                 first, second = (
                     estimate_point(capture.volts[self.reference_channel][part],
                                    capture.volts[self.response_channel][part],
                                    capture.sample_rate_hz, estimates[0].frequency_hz,
-                                   method=self.estimator)
+                                   method="sinefit", refine=False, harmonics=1)
                     for part in (slice(0, half), slice(half, 2 * half))
                 )
             except EstimationError:

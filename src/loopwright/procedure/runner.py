@@ -239,12 +239,16 @@ class Runner:
         amplitude_vpp = amplitude_at(step, frequency_hz, self.bench.max_amplitude_vpp)
         measurer = self._measurer(step, amplitude_vpp)
         self._set_stimulus(frequency_hz, amplitude_vpp)
+        changed_at = time.monotonic()
         rate, length = record_settings(step, frequency_hz, self.max_sample_rate_hz,
                                        self.max_record_length)
         if self._timebase != (length, rate):
             self._actual_rate_hz = self.conn.scope.set_timebase(length, rate)
             self._timebase = (length, rate)
-        time.sleep(settle_time_s(step, frequency_hz))
+        measurer.timeout_s = self.bench.timeout_s + 3.0 * length / rate
+        # the scope is set up while the DUT settles; wait only what is left
+        time.sleep(max(0.0, settle_time_s(step, frequency_hz)
+                       - (time.monotonic() - changed_at)))
         return measurer.measure(
             frequency_hz,
             averages=step.averages,
