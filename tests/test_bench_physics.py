@@ -356,3 +356,22 @@ def test_thread_safe_concurrent_use():
     for t in threads:
         t.join()
     assert not errors
+
+
+def test_bench_shows_the_injection_error_at_a_bad_point():
+    # Middlebrook 1975 (formula re-derived in references.md): what the scope shows at
+    # a bad injection point is -T(1 + Z1/Z2) - Z1/Z2, not the loop's own -T.
+    bad = load_dut("buck_injection", source_resistance_ohm=2000.0, source_inductance_h=0.0,
+                   load_resistance_ohm=5000.0, load_capacitance_f=1e-9)
+    good = load_dut("buck_injection")
+    for f in (1e3, 10e3, 30e3):
+        for dut, must_match_true in ((good, True), (bad, False)):
+            bench, _ = settled_bench(dut, f)
+            for ch in (1, 2):
+                bench.channels[ch].scale_v_per_div = 1e9
+            measured = measured_ratio(bench, f)
+            z1, z2 = dut.injection_impedances(f)
+            t = -complex(dut.true_loop_response(f))
+            assert measured == pytest.approx(-t * (1 + z1 / z2) - z1 / z2, rel=1e-6)
+            error = abs(measured / -t - 1)
+            assert (error < 1e-3) if must_match_true else (error > 0.3)
