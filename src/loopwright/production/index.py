@@ -405,8 +405,8 @@ class ResultsIndex:
             query = query.where(runs_table.c.verdict == verdict)
         if since is not None:
             query = query.where(runs_table.c.started_utc >= since)
-        query = query.order_by(
-            runs_table.c.started_utc.desc(), runs_table.c.indexed_utc.desc()
+        query = query.order_by(  # NULLS LAST spelled out: the back-ends differ by default
+            runs_table.c.started_utc.desc().nulls_last(), runs_table.c.indexed_utc.desc()
         )
         if limit is not None:
             query = query.limit(limit)
@@ -471,7 +471,11 @@ class ResultsIndex:
             )
         if failed_only:
             query = query.where(figures_table.c.passed.is_(False))
-        query = query.order_by(runs_table.c.started_utc, figures_table.c.limit_name)
+        query = query.order_by(
+            runs_table.c.started_utc.asc().nulls_last(),
+            runs_table.c.run_id,
+            figures_table.c.limit_name,
+        )
         with self._reading() as conn:
             return [dict(row._mapping) for row in conn.execute(query)]
 
