@@ -9,12 +9,19 @@ procedure run on the simulated bench stores the same ``H`` again:
   frequency it gives the stored value. Outside the stored range the end value is
   held (gain and phase of the first/last point): the run says nothing there, and a
   held value neither invents a resonance nor a roll-off;
-- transients: a real rational model whose poles come from an AAA fit of the data
-  mirrored to negative frequencies (so the poles come in conjugate pairs), with
-  poles of negligible pull dropped (noise doublets) and the residues refitted by
-  least squares (the fixed-pole step of vector fitting). When a kept pole is not
-  stable, or the rational misses the data by more than :data:`MAX_TRANSIENT_MISFIT`,
-  the board has no transient (steady state only) and ``transient_note`` says why;
+- transients and the closed loop: a real rational model of the stored H whose poles
+  come from an AAA fit of the data mirrored to negative frequencies (so the poles
+  come in conjugate pairs), with poles of negligible pull dropped (noise doublets)
+  and the residues refitted by least squares (the fixed-pole step of vector
+  fitting), strictly proper when that fits. AAA is tried at a few tolerances (tight
+  for clean data, loose for noisy data). When every attempt has an unstable pole or
+  misses the data by more than :data:`MAX_TRANSIENT_MISFIT`, the board has no
+  transient (steady state only; a closed loop then cannot oscillate) and
+  ``transient_note`` says why. Closed, the loop runs around that model with a soft
+  ``tanh`` limit chosen so that it settles at the stored closed-loop amplitude
+  (describing-function balance, :func:`limit_for_amplitude`; 1 V, invented, when the
+  run stored none); the open-loop points get no limit (they already hold whatever
+  compression the board had);
 - noise: each channel's noise at the probe tip from the stored SNR,
   ``amplitude / sqrt(2) / 10**(snr/20)`` (the estimator's SNR is ``A**2/2 / var``),
   less the simulated 12-bit ADC's own quantisation noise at the stored scale (the
@@ -279,18 +286,26 @@ def _try_transient_model(f: np.ndarray, h: np.ndarray, rtol: float
     return None, f"the rational model misses the data by {misfit:.2g} (relative rms)"
 
 
-def _closed_loop_limit(summary: dict[str, Any] | None) -> tuple[float, str]:
-    """The closed loop's soft limit from a stored run's closed-loop result, and why."""
+def _closed_loop_limit(summary: dict[str, Any] | None, network: Rational | None
+                       ) -> tuple[float, str]:
+    """The closed loop's soft limit from a stored run's closed-loop result, and why.
+
+    The loop gain is the closed loop's own: the transient model's gain where its phase
+    crosses zero nearest the stored oscillation (the stored excess gain without one).
+    """
     summary = summary or {}
     closed = summary.get("closed_loop") or {}
     analysis = summary.get("analysis") or {}
     amplitude = closed.get("amplitude_v") if closed.get("oscillating") else None
     gain = analysis.get("excess_gain")
+    f_osc = closed.get("frequency_hz") or analysis.get("oscillation_frequency_hz")
+    if network is not None and f_osc:
+        gain = float(abs(network.at_hz(float(f_osc))))
     if amplitude is not None and gain is not None:
         limit = limit_for_amplitude(float(amplitude), float(gain))
         if limit is not None:
             return limit, (f"soft limit {limit:.4g} V: settles at the stored {amplitude:.4g} V"
-                           f" with the stored excess gain {gain:.4g}")
+                           f" with a loop gain of {gain:.4g} at the oscillation")
     return DEFAULT_CLOSED_LOOP_LIMIT_V, (
         f"soft limit {DEFAULT_CLOSED_LOOP_LIMIT_V:g} V (invented: the run stored no "
         "closed-loop amplitude)")
@@ -362,15 +377,18 @@ class MeasuredResponseDUT(DUTModel):
 
         self._steady = steady
         self.model_method = response.model().method
+        # The rational model is of the loop itself (the stored H): the closed loop runs
+        # around it; the response channel's transients use sign * H (the mismatch, a
+        # probe effect, is in the steady state only).
         if params.transient == "auto":
-            rational, note = transient_model(f, steady(f))
+            loop, note = transient_model(f, response.interpolate(f))
         else:
-            rational, note = None, "transients off (transient: none)"
+            loop, note = None, "transients off (transient: none)"
         self.transient_note = note
-        if rational is None:
-            rational = Rational.constant(1.0)
-        self._channel2 = _MeasuredRational(rational.num, rational.den, steady=steady)
-        self.closed_loop_limit_v, self.closed_loop_note = _closed_loop_limit(run.summary)
+        self._loop = loop
+        shape = loop if loop is not None else Rational.constant(1.0)
+        self._channel2 = _MeasuredRational(self.sign * shape.num, shape.den, steady=steady)
+        self.closed_loop_limit_v, self.closed_loop_note = _closed_loop_limit(run.summary, loop)
         points = run.points
         if params.step is not None:
             points = points[points["step"] == params.step]
@@ -419,6 +437,11 @@ class MeasuredResponseDUT(DUTModel):
 
     def probe_transfer_functions(self) -> tuple[Rational, Rational]:
         return Rational.constant(1.0), self._channel2
+
+    def true_transfer_function(self) -> Rational:
+        """The loop's own H (the stored one, sign and mismatch out) as the rational
+        model; a constant 1 when the board has no rational model."""
+        return self._loop if self._loop is not None else Rational.constant(1.0)
 
     def loop_system(self) -> LoopSystem:
         """The closed loop: the transient model with the soft limit of
