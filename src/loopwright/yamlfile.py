@@ -288,10 +288,9 @@ def validate(model: type[ModelT], source: YamlSource, loc: FieldPath = ()) -> Mo
         clean: list[str | int] = []
         probe: Any = data
         for part in err_loc:
-            if isinstance(probe, dict) and part in probe:
-                clean.append(part)
-                probe = probe[part]
-            elif isinstance(probe, list) and isinstance(part, int) and part < len(probe):
+            in_dict = isinstance(probe, dict) and part in probe
+            in_list = isinstance(probe, list) and isinstance(part, int) and part < len(probe)
+            if in_dict or in_list:
                 clean.append(part)
                 probe = probe[part]
             elif first.get("type") in ("extra_forbidden", "missing") and part == err_loc[-1]:

@@ -430,9 +430,12 @@ def bode_figure(
                              color=palette.GAIN_COLOUR, alpha=0.18, linewidth=0, zorder=2)
     if phase_std is not None:
         spread = BAND_SIGMAS * np.nan_to_num(phase_std, nan=0.0)
-        low_f, low_p = wrap_breaks(frequency_hz, phase_deg - spread)
-        _, high_p = wrap_breaks(frequency_hz, phase_deg + spread)
-        ax_phase.fill_between(low_f, low_p, high_p, color=palette.PHASE_COLOUR, alpha=0.22,
+        # break the band where the centre line wraps, so both edges break together
+        jumps = np.flatnonzero(np.abs(np.diff(phase_deg)) > 180.0) + 1
+        band_f = np.insert(frequency_hz, jumps, np.nan)
+        low_p = np.insert(phase_deg - spread, jumps, np.nan)
+        high_p = np.insert(phase_deg + spread, jumps, np.nan)
+        ax_phase.fill_between(band_f, low_p, high_p, color=palette.PHASE_COLOUR, alpha=0.22,
                               linewidth=0, zorder=2)
     ax_gain.plot(frequency_hz, gain_db, color=palette.GAIN_COLOUR, linewidth=1.5,
                  marker="o", ms=2.5, zorder=3)
