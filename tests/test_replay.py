@@ -107,10 +107,13 @@ def figures(run_dir: Path) -> dict:
     return json.loads((run_dir / "summary.json").read_text())["analysis"]
 
 
-def assert_consistent(a: dict, b: dict, k: float = 3.0) -> None:
-    """Phase margin, crossover, gain margin and its frequency agree within k combined
-    sigma of the two runs' own reported uncertainties (both are noisy measurements of
-    the same board)."""
+def assert_consistent(a: dict, b: dict, k: float = 1.0) -> None:
+    """Phase margin, crossover, gain margin and its frequency of ``a`` lie within k
+    times the stored run ``b``'s own reported one-sigma uncertainty of its figures.
+
+    Seen: the replays land within 0.05 sigma (the replay reproduces the stored
+    interpolation; only the fresh noise differs), so k = 1 leaves room without
+    letting a wrong sign, mismatch or interpolation through."""
     xa, xb = a["gain_crossovers"][0], b["gain_crossovers"][0]
     za, zb = a["zero_phase_crossings"][0], b["zero_phase_crossings"][0]
     pairs = [
@@ -121,8 +124,8 @@ def assert_consistent(a: dict, b: dict, k: float = 3.0) -> None:
          a["gain_margin_db_std"], b["gain_margin_db_std"]),
         (za["frequency_hz"], zb["frequency_hz"], za["frequency_hz_std"], zb["frequency_hz_std"]),
     ]
-    for got, want, sa, sb in pairs:
-        assert abs(got - want) <= k * math.hypot(sa, sb), (got, want, sa, sb)
+    for got, want, _, stored_std in pairs:
+        assert abs(got - want) <= k * stored_std, (got, want, stored_std)
 
 
 # --------------------------------------------------------------------------- the board
@@ -262,9 +265,9 @@ def test_sign_is_undone_and_applied_again(tmp_path) -> None:
     source = measure(write_procedure(tmp_path, "flipped", sign=-1),
                      write_bench(tmp_path, "rational", dc_gain=5.0), tmp_path / "runs")
     board = MeasuredResponseDUT.from_run(source)
-    f = load_run(source).response.frequency_hz
-    np.testing.assert_allclose(board.loop_response(f), -load_run(source).response.h,
-                               rtol=1e-12)
+    response = load_run(source).response
+    f = response.frequency_hz
+    np.testing.assert_allclose(board.loop_response(f), -response.interpolate(f), rtol=1e-12)
     outcome = replay_run(source, out_dir=tmp_path / "out", seed=9, render_report=False)
     assert_consistent(figures(outcome.run_dir), figures(source))
 
@@ -286,7 +289,8 @@ def test_stored_mismatch_on_the_response_channel(source, tmp_path) -> None:
     board = MeasuredResponseDUT.from_run(crafted)
     response = load_run(crafted).response
     np.testing.assert_allclose(board.loop_response(response.frequency_hz),
-                               response.h * mismatch, rtol=1e-12)
+                               response.interpolate(response.frequency_hz) * mismatch,
+                               rtol=1e-12)
     with_cal = replay_run(crafted, out_dir=tmp_path / "a", seed=3, render_report=False)
     cal_f, cal_m = load_run(with_cal.run_dir).calibration
     np.testing.assert_allclose(cal_m, mismatch, rtol=1e-15)
