@@ -160,6 +160,27 @@ def test_sign_and_calibration_applied_like_the_runner(source, tmp_path) -> None:
         crafted / "calibration.csv").read_bytes()
 
 
+def test_averaged_points_are_recomputed_from_their_last_record(tmp_path) -> None:
+    """Averaging keeps only the last record: the reanalysis says so, and the point it
+    gives is that record's estimate (within 5 sigma of the stored two-record mean)."""
+    text = PROCEDURE.replace("points_per_decade: 6", "points_per_decade: 2").replace(
+        "    keep_captures: true", "    averages: 2\n    keep_captures: true")
+    (tmp_path / "p.yaml").write_text(text)
+    (tmp_path / "b.yaml").write_text(BENCH)
+    source = run_procedure(tmp_path / "p.yaml", tmp_path / "b.yaml",
+                           RunOptions(out_dir=tmp_path / "runs", serial="A2", quiet=True,
+                                      render_report=False)).run_dir
+    outcome = reanalyze_run(source, out_dir=tmp_path / "out", render_report=False)
+    a, b = load_run(source).points, load_run(outcome.run_dir).points
+    assert (a["averages"] == 2).all() and (b["averages"] == 1).all()
+    assert outcome.single_record == a["index"].tolist()
+    manifest = json.loads((outcome.run_dir / "manifest.json").read_text())
+    assert manifest["reanalysis"]["single_record"] == a["index"].tolist()
+    assert "from their last record only" in manifest["reanalysis"]["note"]
+    # a lone record's std is sqrt(2) times the two-record mean's
+    assert np.all(np.abs(a["phase_deg"] - b["phase_deg"]) < 5 * b["phase_deg_std"])
+
+
 def test_report_is_rendered(source, tmp_path) -> None:
     pytest.importorskip("loopwright.report")
     outcome = reanalyze_run(source, out_dir=tmp_path)

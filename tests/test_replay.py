@@ -369,6 +369,24 @@ def test_oscillator_replay_reproduces_start_up_figures(tmp_path) -> None:
     assert cb["amplitude_v"] == pytest.approx(ca["amplitude_v"], rel=0.05)
 
 
+def test_stored_prompt_switch_becomes_the_simulated_relay(source, tmp_path) -> None:
+    from loopwright.procedure.replay import _stored_procedure_text
+    from loopwright.procedure.schema import loads_procedure
+
+    crafted = tmp_path / "prompted"
+    shutil.copytree(source, crafted)
+    manifest = json.loads((crafted / "manifest.json").read_text())
+    procedure = manifest["procedure"]
+    procedure["steps"].append({"kind": "closed_loop_check", "switch": "prompt",
+                               "close_text": "Fit the loop link.", "expected_frequency_hz":
+                               1000.0})
+    RunFolder(crafted, manifest).update_manifest(procedure=procedure)
+    text, changes = _stored_procedure_text(load_run(crafted))
+    step = loads_procedure(text).steps[-1]
+    assert step.switch == "relay" and step.close_text is None
+    assert changes == ["step 2: switch prompt -> relay (the simulated loop switch)"]
+
+
 # --------------------------------------------------------------------------- CLI
 
 

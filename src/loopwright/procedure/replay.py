@@ -14,11 +14,14 @@ stored procedure written back to YAML) are kept in the new run folder under
 A stored channel calibration cannot be measured again on the simulated bench (its
 probes cannot both be put on one node), so a replayed procedure with a
 ``calibrate_channels`` step is given the stored calibration.csv as its own; the
-manifest says ``replay_calibration: "copied from the source run"``.
+manifest says ``replay_calibration: "copied from the source run"``. A stored
+closed-loop check that asked the operator to close the loop (``switch: prompt``) uses
+the simulated loop switch instead (``replay_procedure_changes`` in the manifest).
 """
 
 from __future__ import annotations
 
+import copy
 import shutil
 import tempfile
 from pathlib import Path
@@ -58,13 +61,28 @@ def check_replayable(run_dir: str | Path) -> Any:
     return run
 
 
-def _stored_procedure_text(run: Any) -> str:
+def _stored_procedure_text(run: Any) -> tuple[str, list[str]]:
+    """The stored procedure as YAML, and what was changed for the simulated board.
+
+    A closed-loop check that asked the operator to close the loop uses the simulated
+    bench's loop switch instead (nobody can close a simulated loop by hand).
+    """
     record = run.manifest.get("procedure")
-    if not isinstance(record, dict) or "steps" not in record:
+    if not isinstance(record, dict) or not isinstance(record.get("steps"), list):
         raise InputError("the manifest holds no procedure; give one with --procedure",
                          path=str(run.path / "manifest.json"), field="procedure")
+    record = copy.deepcopy(record)
+    changes = []
+    for number, step in enumerate(record["steps"], start=1):
+        if isinstance(step, dict) and step.get("kind") == "closed_loop_check" \
+                and step.get("switch") == "prompt":
+            step["switch"] = "relay"
+            step.pop("close_text", None)
+            step.pop("open_text", None)
+            changes.append(f"step {number}: switch prompt -> relay (the simulated loop"
+                           " switch)")
     header = (f"# The procedure of {run.path.name} as it ran, written back for its replay.\n")
-    return header + yaml.safe_dump(record, sort_keys=False)
+    return header + yaml.safe_dump(record, sort_keys=False), changes
 
 
 def _bench_text(run: Any, seed: int | None) -> str:
@@ -133,9 +151,11 @@ def replay_run(run_dir: str | Path, *, procedure: str | Path | None = None,
                             + yaml.safe_dump(dut_data, sort_keys=False), encoding="utf-8")
         bench_file = work / "bench.yaml"
         bench_file.write_text(_bench_text(run, seed), encoding="utf-8")
+        changes: list[str] = []
         if procedure is None:
             procedure_file = work / "procedure.yaml"
-            procedure_file.write_text(_stored_procedure_text(run), encoding="utf-8")
+            text, changes = _stored_procedure_text(run)
+            procedure_file.write_text(text, encoding="utf-8")
         else:
             procedure_file = Path(procedure)
         parsed = load_procedure(procedure_file)
@@ -146,6 +166,8 @@ def replay_run(run_dir: str | Path, *, procedure: str | Path | None = None,
             "replay_board": board.describe(),
             "simulated": True,
         }
+        if changes:
+            extra["replay_procedure_changes"] = changes
         options = RunOptions(out_dir=target, serial=serial, quiet=quiet,
                              render_report=render_report, manifest_extra=extra,
                              # nobody stands at a simulated board: prompts answer themselves
