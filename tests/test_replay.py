@@ -177,6 +177,17 @@ def test_transient_model_recovers_exact_poles() -> None:
     np.testing.assert_allclose(model.at_hz(f), dut.loop_response(f), rtol=1e-8)
 
 
+def test_board_settles_with_the_loop_own_time_constants(source) -> None:
+    """From the noisy stored run the board's transient model keeps the loop's three
+    modes (3 kHz real pole, 20 kHz +- j15 kHz pair) and drops noise-fitted ones: its
+    time constants match the DUT's own within 2 %."""
+    board = MeasuredResponseDUT.from_run(source)
+    want = load_dut("rational").time_constants_s()
+    got = board.time_constants_s()
+    assert got.size == want.size, board.transient_note
+    np.testing.assert_allclose(got, want, rtol=0.02)
+
+
 def test_transient_model_is_stable_or_absent_on_noisy_data() -> None:
     dut = load_dut("rational")
     f = np.geomspace(200.0, 2e5, 22)

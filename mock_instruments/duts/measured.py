@@ -13,10 +13,11 @@ procedure run on the simulated bench stores the same ``H`` again:
   come from an AAA fit of the data mirrored to negative frequencies (so the poles
   come in conjugate pairs), with poles of negligible pull dropped (noise doublets)
   and the residues refitted by least squares (the fixed-pole step of vector
-  fitting), strictly proper when that fits. AAA is tried at a few tolerances (tight
-  for clean data, loose for noisy data). When every attempt has an unstable pole or
-  misses the data by more than :data:`MAX_TRANSIENT_MISFIT`, the board has no
-  transient (steady state only; a closed loop then cannot oscillate) and
+  fitting), modes the data do not need dropped (the fit stays within 2 sigma rms of
+  the stored points without them), strictly proper when that fits. AAA is tried at
+  a few tolerances (tight for clean data, loose for noisy data). When every attempt
+  has an unstable pole or misses the data by more than :data:`MAX_TRANSIENT_MISFIT`,
+  the board has no transient (steady state only; a closed loop then cannot oscillate) and
   ``transient_note`` says why. Closed, the loop runs around that model with a soft
   ``tanh`` limit chosen so that it settles at the stored closed-loop amplitude
   (describing-function balance, :func:`limit_for_amplitude`; 1 V, invented, when the
@@ -59,6 +60,11 @@ MAX_TRANSIENT_MISFIT = 0.05
 #: A pole whose pull at the nearest data point is below this fraction of |H| there is
 #: a noise doublet and is dropped from the transient model.
 DOUBLET_PULL = 1e-3
+#: With per-point sigma, a mode is dropped while the fit without it stays within
+#: this many sigma rms of the data.
+CHI_OK = 2.0
+#: A fitted pole whose term stays below this fraction of |H| at every point is dropped.
+WEAK_TERM = 0.01
 #: Relative distance within which two fitted poles are one (see _real_pole_set).
 POLE_MATCH = 2e-2
 #: AAA tolerances tried in turn (tight for clean data, loose for noisy data).
@@ -214,7 +220,9 @@ def _rational_from_basis(coeffs: np.ndarray, poles: list[complex],
     return Rational(num_s, den_s)
 
 
-def transient_model(frequency_hz: np.ndarray, h: np.ndarray) -> tuple[Rational | None, str]:
+def transient_model(frequency_hz: np.ndarray, h: np.ndarray,
+                    relative_sigma: np.ndarray | None = None
+                    ) -> tuple[Rational | None, str]:
     """A stable real rational close to ``h`` for the bench's transients, or None and why.
 
     Parameters
@@ -222,23 +230,84 @@ def transient_model(frequency_hz: np.ndarray, h: np.ndarray) -> tuple[Rational |
     frequency_hz
         Increasing positive frequencies.
     h
-        The raw ratio the board shows at each frequency.
+        The complex response at each frequency.
+    relative_sigma
+        Each point's one-sigma relative error (from the stored gain and phase std);
+        with it, fitted modes the data do not need (the fit stays within
+        :data:`CHI_OK` sigma rms without them) are dropped.
     """
     f = np.asarray(frequency_hz, dtype=float)
     h = np.asarray(h, dtype=complex)
+    sigma = None
+    if relative_sigma is not None:
+        sigma = np.asarray(relative_sigma, dtype=float)
+        if sigma.shape != f.shape or not np.all(np.isfinite(sigma) & (sigma > 0)):
+            sigma = None
     if f.size < 4:
         return None, f"{f.size} points are too few for a rational model; steady state only"
     note = "no rational fit tried"
     # A loose tolerance for noisy data: the transient needs the poles, not the noise.
     for rtol in RATIONAL_TOLERANCES:
-        model, note = _try_transient_model(f, h, rtol)
+        model, note = _try_transient_model(f, h, rtol, sigma)
         if model is not None:
             return model, note
     return None, note + "; steady state only (no transient)"
 
 
-def _try_transient_model(f: np.ndarray, h: np.ndarray, rtol: float
-                         ) -> tuple[Rational | None, str]:
+def _fit(s: np.ndarray, h: np.ndarray, poles: list[complex], weight: np.ndarray,
+         proper: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted least-squares coefficients of the real basis (the constant term left at
+    zero unless ``proper``), and the basis."""
+    basis = _basis(s, poles)
+    rows = np.concatenate([(basis * weight[:, None]).real, (basis * weight[:, None]).imag])
+    rhs = np.concatenate([(h * weight).real, (h * weight).imag])
+    first = 0 if proper else 1
+    coeffs = np.zeros(rows.shape[1])
+    coeffs[first:], *_ = np.linalg.lstsq(rows[:, first:], rhs, rcond=None)
+    return coeffs, basis
+
+
+def _chi(s: np.ndarray, h: np.ndarray, poles: list[complex], sigma: np.ndarray) -> float:
+    """Rms misfit in units of each point's sigma (constant term allowed)."""
+    weight = 1.0 / (np.abs(h) * sigma)
+    coeffs, basis = _fit(s, h, poles, weight, True)
+    return float(np.sqrt(np.mean(np.abs((basis @ coeffs - h) * weight) ** 2)))
+
+
+def _prune_poles(s: np.ndarray, h: np.ndarray, poles: list[complex],
+                 sigma: np.ndarray | None) -> list[complex]:
+    """Drop fitted modes the data do not need.
+
+    With per-point sigma: while leaving one mode out keeps the fit within
+    :data:`CHI_OK` sigma rms, leave out the one that matters least. Without: drop modes
+    whose term stays below :data:`WEAK_TERM` of |H| at every point.
+    """
+    kept = list(poles)
+    while kept:
+        if sigma is not None:
+            trials = [_chi(s, h, kept[:i] + kept[i + 1:], sigma) for i in range(len(kept))]
+            best = int(np.argmin(trials))
+            if trials[best] > CHI_OK:
+                break
+            del kept[best]
+            continue
+        coeffs, basis = _fit(s, h, kept, 1.0 / np.abs(h), True)
+        strengths = []
+        column = 1
+        for p in kept:
+            width = 1 if p.imag == 0 else 2
+            term = basis[:, column:column + width] @ coeffs[column:column + width]
+            strengths.append(float(np.max(np.abs(term) / np.abs(h))))
+            column += width
+        weakest = int(np.argmin(strengths))
+        if strengths[weakest] >= WEAK_TERM:
+            break
+        del kept[weakest]
+    return kept
+
+
+def _try_transient_model(f: np.ndarray, h: np.ndarray, rtol: float,
+                         sigma: np.ndarray | None) -> tuple[Rational | None, str]:
     """One attempt of :func:`transient_model` at one AAA tolerance."""
     from scipy.interpolate import AAA
 
@@ -268,22 +337,27 @@ def _try_transient_model(f: np.ndarray, h: np.ndarray, rtol: float
         shown = ", ".join(f"{p / (2 * np.pi):.4g}" for p in unstable[:3])
         return None, f"the rational fit has unstable pole(s) at s/2pi = {shown} Hz"
     s = 2j * np.pi * f
-    basis = _basis(s, poles)
-    weight = 1.0 / np.abs(h)
-    rows = np.concatenate([(basis * weight[:, None]).real, (basis * weight[:, None]).imag])
-    rhs = np.concatenate([(h * weight).real, (h * weight).imag])
+    poles = _prune_poles(s, h, poles, sigma)
     misfit = math.inf
     # Strictly proper first (no feed-through: a closed loop needs no extra fast pole),
     # then with a constant term for responses that flatten out at the top.
-    for first in (1, 0):
-        coeffs = np.zeros(rows.shape[1])
-        coeffs[first:], *_ = np.linalg.lstsq(rows[:, first:], rhs, rcond=None)
+    for proper in (False, True):
+        coeffs, _ = _fit(s, h, poles, 1.0 / np.abs(h), proper)
         model = _rational_from_basis(coeffs, poles, w_ref)
         misfit = float(np.sqrt(np.mean(np.abs(model.at_hz(f) / h - 1.0) ** 2)))
         if np.isfinite(misfit) and misfit <= MAX_TRANSIENT_MISFIT:
             return model, (f"transients from a rational model with {model.den.size - 1}"
                            f" poles, {misfit:.2g} relative rms from the data")
     return None, f"the rational model misses the data by {misfit:.2g} (relative rms)"
+
+
+def _relative_sigma(response: Any) -> np.ndarray | None:
+    """Each stored point's relative one-sigma error from its gain (dB) and phase std."""
+    if response.gain_db_std is None or response.phase_deg_std is None:
+        return None
+    gain = np.asarray(response.gain_db_std, dtype=float) * math.log(10.0) / 20.0
+    phase = np.deg2rad(np.asarray(response.phase_deg_std, dtype=float))
+    return np.hypot(gain, phase)
 
 
 def _closed_loop_limit(summary: dict[str, Any] | None, network: Rational | None
@@ -381,7 +455,8 @@ class MeasuredResponseDUT(DUTModel):
         # around it; the response channel's transients use sign * H (the mismatch, a
         # probe effect, is in the steady state only).
         if params.transient == "auto":
-            loop, note = transient_model(f, response.interpolate(f))
+            loop, note = transient_model(f, response.interpolate(f),
+                                         _relative_sigma(response))
         else:
             loop, note = None, "transients off (transient: none)"
         self.transient_note = note
