@@ -15,6 +15,7 @@ The format is the run-folder contract in DEVELOPERS.md. Durability rules:
 
 from __future__ import annotations
 
+import bisect
 import contextlib
 import csv
 import io
@@ -187,15 +188,21 @@ class RunFolder:
     manifest
         The manifest as last written.
     done_points
-        Rows already in points.csv (list of dicts with numbers parsed: ``index``,
-        ``step``, ``frequency_hz``, ``refined`` ...); empty for a new run.
+        Rows already in points.csv: dicts with ``index``, ``step``, ``frequency_hz``,
+        ``gain_re``, ``gain_im``, ``refined`` and ``flags`` parsed (only these columns
+        are kept in memory, so a 100,000-point run stays small); empty for a new run.
     """
 
     def __init__(self, path: Path, manifest: dict[str, Any],
                  done_points: list[dict[str, Any]] | None = None) -> None:
         self.path = Path(path)
         self.manifest = manifest
-        self.done_points: list[dict[str, Any]] = list(done_points or [])
+        self.done_points: list[dict[str, Any]] = [_compact(p) for p in done_points or []]
+        # step -> sorted frequencies, for is_done without a scan of every point
+        self._done_hz: dict[int, list[float]] = {}
+        for point in self.done_points:
+            bisect.insort(self._done_hz.setdefault(int(point["step"]), []),
+                          float(point["frequency_hz"]))
         self._points_handle: io.BufferedWriter | None = None
         self._next_index = (max((int(p["index"]) for p in self.done_points), default=-1) + 1)
 
@@ -314,10 +321,10 @@ class RunFolder:
         Frequencies are written with Python's shortest round-trip text, so a planned
         frequency reads back bit for bit; a relative tolerance of 1e-9 covers the rest.
         """
-        return any(int(p["step"]) == int(step)
-                   and math.isclose(float(p["frequency_hz"]), float(frequency_hz),
-                                    rel_tol=1e-9)
-                   for p in self.done_points)
+        done = self._done_hz.get(int(step), [])
+        at = bisect.bisect_left(done, float(frequency_hz))
+        return any(math.isclose(done[i], float(frequency_hz), rel_tol=1e-9)
+                   for i in (at - 1, at) if 0 <= i < len(done))
 
     def done_in_step(self, step: int) -> list[dict[str, Any]]:
         """The stored points of one step, in the order they were measured."""
@@ -355,8 +362,10 @@ class RunFolder:
             os.fsync(handle.fileno())
         except OSError as exc:
             raise RunError(f"cannot write {self.path / POINTS_FILE}: {exc.strerror}") from exc
-        parsed = _parse_row(next(csv.reader([text])), self.path / POINTS_FILE, 0)
+        parsed = _compact(_parse_row(next(csv.reader([text])), self.path / POINTS_FILE, 0))
         self.done_points.append(parsed)
+        bisect.insort(self._done_hz.setdefault(int(parsed["step"]), []),
+                      float(parsed["frequency_hz"]))
         self._next_index = max(self._next_index, index + 1)
         return index
 
@@ -458,6 +467,14 @@ class RunFolder:
 
 
 # ---------------------------------------------------------------------- reading rows
+
+
+_KEPT_COLUMNS = ("index", "step", "frequency_hz", "gain_re", "gain_im", "refined", "flags")
+
+
+def _compact(row: Mapping[str, Any]) -> dict[str, Any]:
+    """The columns a run needs to resume (the rest stays on disk)."""
+    return {key: row.get(key) for key in _KEPT_COLUMNS}
 
 
 def _parse_row(fields: list[str], path: Path, line: int) -> dict[str, Any]:
