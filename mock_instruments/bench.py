@@ -17,6 +17,12 @@ computes each acquisition from them:
    jitter, channel skew, quantisation over the screen and clipping at its edges
    (:mod:`mock_instruments.signal_chain`).
 
+Channel 2's probe and input may differ from channel 1's (:class:`Impairments`:
+``channel2_gain_error``, ``channel2_delay_s``, ``channel2_pole_hz``): whatever channel 2
+looks at, it sees through that mismatch. :meth:`SimulatedBench.set_probes_joined` puts
+channel 2's probe on channel 1's node (the relay box's relay 2), so channel 2 / channel
+1 is then the mismatch alone: what a channel calibration measures.
+
 The bench clock is injectable (tests advance a fake clock; the default is
 ``time.monotonic``), so settling behaves deterministically in tests.
 """
@@ -35,7 +41,7 @@ import scipy.linalg
 from loopwright.errors import InputError
 from mock_instruments import signal_chain
 from mock_instruments.duts import DUTModel, load_dut
-from mock_instruments.lti import StateSpace
+from mock_instruments.lti import Rational, StateSpace
 from mock_instruments.oscillate import ClosedLoopRun
 
 #: Harmonics of the soft saturation carried through the DUT's network.
@@ -73,6 +79,12 @@ class Impairments:
 
     ``adc_bits = 0`` is an ideal converter (no quantisation; clipping still applies),
     for exactness tests.
+
+    The ``channel2_*`` fields describe channel 2's probe and input against channel 1's:
+    channel 2 shows ``(1 + channel2_gain_error) exp(-j w channel2_delay_s) /
+    (1 + j f / channel2_pole_hz)`` times the voltage at its probe tip
+    (:meth:`SimulatedBench.channel2_mismatch`). With the loop closed only the gain
+    error and the delay apply (the closed loop is sampled, not filtered).
     """
 
     noise_v_rms: tuple[float, float] = (0.0, 0.0)   # per channel, at the probe tip
@@ -81,6 +93,9 @@ class Impairments:
     clock_offset_ppm: float = 0.0                  # scope sample clock vs generator
     trigger_jitter_s: float = 0.0
     skew_s: float = 0.0                            # channel 2 sampled this much later
+    channel2_gain_error: float = 0.0               # ratio - 1: 0.01 = channel 2 reads 1 % high
+    channel2_delay_s: float = 0.0                  # probe/cable delay beyond channel 1's
+    channel2_pole_hz: float | None = None          # first-order probe pole (None = flat)
 
 
 @dataclass(frozen=True)
@@ -220,6 +235,9 @@ class SimulatedBench:
         ``{1: reference probe, 2: response probe}`` vertical settings (edit freely).
     loop_closed
         The loop switch; change it through :meth:`set_loop_closed`.
+    probes_joined
+        True while channel 2's probe sits on channel 1's node; change it through
+        :meth:`set_probes_joined`.
     """
 
     def __init__(self, dut: DUTModel | str | Path, impairments: Impairments | None = None, *,
@@ -229,15 +247,22 @@ class SimulatedBench:
         if self.impairments.adc_bits not in (0, 8, 10, 12, 14, 16):
             raise InputError(f"adc_bits must be 8, 10, 12, 14, 16 or 0 (ideal), "
                              f"not {self.impairments.adc_bits}")
+        mismatch = _channel2_mismatch_tf(self.impairments)
         self.clock = clock
         self.rng = np.random.default_rng(seed)
         self.generator = GeneratorState()
         self.channels: dict[int, ScopeChannelState] = {1: ScopeChannelState(),
                                                       2: ScopeChannelState()}
         self.loop_closed = False
+        self.probes_joined = False
         self._lock = threading.RLock()
         ch1, ch2 = self.dut.probe_transfer_functions()
-        self._ch = [_Channel(ch1.realise(), 0.0), _Channel(ch2.realise(), self.dut.delay_s)]
+        probe_delay_s = float(self.impairments.channel2_delay_s)
+        # channel 1; channel 2 on its own node; channel 2 on channel 1's node (joined).
+        # All three keep their state across generator changes, so joining is seamless.
+        self._ch = [_Channel(ch1.realise(), 0.0),
+                    _Channel((ch2 * mismatch).realise(), self.dut.delay_s + probe_delay_s),
+                    _Channel((ch1 * mismatch).realise(), probe_delay_s)]
         gain, limit = self.dut.stage_gain_and_limit()
         self._stage_gain = gain
         self._stage_limit = limit
@@ -315,10 +340,28 @@ class SimulatedBench:
                 self._segments.append(_Segment(t, drive, homogeneous))
                 del self._segments[:-_KEPT_SEGMENTS]
 
+    # --- probes -------------------------------------------------------------------------
+    def set_probes_joined(self, joined: bool) -> None:
+        """Put channel 2's probe on channel 1's node (True) or back on its own (False).
+
+        Joined, channel 2 shows channel 1's node through channel 2's own mismatch, so
+        channel 2 / channel 1 = :meth:`channel2_mismatch`. The loop is not touched.
+        """
+        with self._lock:
+            self.probes_joined = bool(joined)
+
     # --- exact answers ------------------------------------------------------------------
     def exact_response(self, frequency_hz) -> np.ndarray:
-        """Complex ``H = response / reference`` the bench shows with no impairments."""
+        """Complex ``H = response / reference`` of the DUT alone (no impairments, no
+        channel mismatch): what a calibrated measurement should show."""
         return self.dut.loop_response(frequency_hz)
+
+    def channel2_mismatch(self, frequency_hz) -> np.ndarray:
+        """Complex channel 2 / channel 1 with both probes on one node (1 when matched)."""
+        imp = self.impairments
+        f = np.asarray(frequency_hz, dtype=float)
+        return (_channel2_mismatch_tf(imp).at_hz(f)
+                * np.exp(-2j * np.pi * f * float(imp.channel2_delay_s)))
 
     def acquisition_duration_s(self, record_length: int, sample_rate_hz: float) -> float:
         """Real time one record takes (scope clock offset included)."""
@@ -327,7 +370,11 @@ class SimulatedBench:
     def settling_time_constant_s(self) -> float:
         """The slowest decaying time constant of the probe signals (seconds)."""
         taus = self.dut.time_constants_s()
-        return float(taus[0]) if taus.size else 0.0
+        slowest = float(taus[0]) if taus.size else 0.0
+        pole_hz = self.impairments.channel2_pole_hz
+        if pole_hz is not None:
+            slowest = max(slowest, 1.0 / (2 * np.pi * float(pole_hz)))
+        return slowest
 
     # --- acquisition --------------------------------------------------------------------
     def _harmonics(self, drive: _Drive) -> np.ndarray:
@@ -385,7 +432,7 @@ class SimulatedBench:
         return out
 
     def _dc_level(self, index: int) -> float:
-        """Steady DC part of a channel (what AC coupling takes away)."""
+        """Steady DC part of a channel system (what AC coupling takes away)."""
         if self.loop_closed:
             return 0.0
         drive = self._segments[-1].drive
@@ -424,24 +471,53 @@ class SimulatedBench:
                 t_trig += float(self.rng.normal(0.0, imp.trigger_jitter_s))
             dt1 = signal_chain.sample_times(0.0, record_length, sample_rate_hz,
                                             imp.clock_offset_ppm)
+            # the system channel 2 shows: its own node, or channel 1's when joined
+            systems = (0, 2 if self.probes_joined else 1)
             if self.loop_closed:
                 assert self._closed_run is not None
                 run = self._closed_run
-                start = t_trig + min(0.0, imp.skew_s)
+                # both probes see the one loop node; channel 2 through its gain and delay
+                lag_s = imp.skew_s - float(imp.channel2_delay_s)
+                start = t_trig + min(0.0, lag_s)
                 if start < run.t_s:         # never before the loop's own present
                     t_trig += run.t_s - start
-                v1, v2 = run.sample([t_trig + dt1, t_trig + imp.skew_s + dt1])
+                v1, v2 = run.sample([t_trig + dt1, t_trig + lag_s + dt1])
+                v2 = v2 * (1.0 + float(imp.channel2_gain_error))
             else:
                 v1 = self._open_loop_channel(0, t_trig, dt1)
-                v2 = self._open_loop_channel(1, t_trig + imp.skew_s, dt1)
+                v2 = self._open_loop_channel(systems[1], t_trig + imp.skew_s, dt1)
             records = {}
             for number, volts in ((1, v1), (2, v2)):
                 state = self.channels[number]
                 if state.coupling.upper() == "AC":
-                    volts = volts - self._dc_level(number - 1)
+                    volts = volts - self._dc_level(systems[number - 1])
                 volts = volts + imp.dc_offsets_v[number - 1]
                 volts = volts + signal_chain.white_noise(self.rng, imp.noise_v_rms[number - 1],
                                                          record_length)
                 records[number] = signal_chain.quantise(volts, state.scale_v_per_div,
                                                         state.offset_v, imp.adc_bits)
             return records
+
+
+def _channel2_mismatch_tf(impairments: Impairments) -> Rational:
+    """Channel 2's gain error and probe pole as a rational function (delay apart).
+
+    Raises
+    ------
+    InputError
+        A gain error at or below -1, a negative delay or a pole frequency not above 0.
+    """
+    gain_error = float(impairments.channel2_gain_error)
+    if not np.isfinite(gain_error) or gain_error <= -1.0:
+        raise InputError(f"channel2_gain_error must be above -1 (a ratio minus 1),"
+                         f" not {gain_error}")
+    delay_s = float(impairments.channel2_delay_s)
+    if not np.isfinite(delay_s) or delay_s < 0:
+        raise InputError(f"channel2_delay_s must be 0 or more, not {delay_s}")
+    tf = Rational.constant(1.0 + gain_error)
+    pole_hz = impairments.channel2_pole_hz
+    if pole_hz is not None:
+        if not np.isfinite(pole_hz) or pole_hz <= 0:
+            raise InputError(f"channel2_pole_hz must be above 0 Hz, not {pole_hz}")
+        tf = tf * Rational(np.array([1.0]), np.array([1.0 / (2 * np.pi * float(pole_hz)), 1.0]))
+    return tf

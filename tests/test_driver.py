@@ -354,7 +354,8 @@ def test_switch_relay_exact_commands(recorder):
     assert switch.read_closed() is True
     switch.close()
     assert recorder.sent_since(mark) == ["ROUT:CLOS 1", "SYST:ERR?", "ROUT:STAT? 1",
-                                         "ROUT:OPEN 1", "SYST:ERR?"]
+                                         "ROUT:OPEN 1", "SYST:ERR?",
+                                         "ROUT:OPEN 2", "SYST:ERR?"]
     with pytest.raises(DriverError):
         switch.set_closed("1;*RST")
 

@@ -418,7 +418,7 @@ def test_relay_box_opens_and_closes_the_loop() -> None:
     assert ask(relay, "ROUT:STAT? 1") == "1"
     relay.handle("ROUT:OPEN (@1)")
     assert bench.loop_closed is False
-    relay.handle("ROUT:CLOS 2")
+    relay.handle("ROUT:CLOS 3")
     assert errors_of(relay) == [-222]
     relay.handle("ROUT:CLOS 1;*RST")
     assert bench.loop_closed is False

@@ -373,17 +373,34 @@ class ScopeDriver(DriverBase):
         return ("commands", "readback", "acquisition", "waveform")
 
 
-class SwitchCommands(_Strict):
-    """Command templates of a loop switch."""
+_SwitchCommand = Annotated[list[Constant], BeforeValidator(_as_list), Field(min_length=1)]
 
-    close_loop: Annotated[list[Constant], BeforeValidator(_as_list), Field(min_length=1)]
-    open_loop: Annotated[list[Constant], BeforeValidator(_as_list), Field(min_length=1)]
+
+class SwitchCommands(_Strict):
+    """Command templates of a loop switch (constants: no placeholders).
+
+    ``join_probes`` / ``separate_probes`` are optional and go together: a switch that
+    can also put channel 2's probe on channel 1's node (for a channel calibration).
+    """
+
+    close_loop: _SwitchCommand
+    open_loop: _SwitchCommand
+    join_probes: _SwitchCommand | None = None
+    separate_probes: _SwitchCommand | None = None
+
+    @model_validator(mode="after")
+    def _probe_pair(self) -> SwitchCommands:
+        if (self.join_probes is None) != (self.separate_probes is None):
+            raise ValueError("join_probes and separate_probes go together; give both or"
+                             " neither")
+        return self
 
 
 class SwitchReadback(_Strict):
     """Queries that read the switch state back."""
 
     closed: StateQuery
+    probes_joined: StateQuery | None = None
 
 
 class SwitchDriver(DriverBase):

@@ -1,4 +1,4 @@
-"""The roles the runner knows: Generator, Scope and LoopSwitch.
+"""The roles the runner knows: Generator, Scope, LoopSwitch and ProbeSwitch.
 
 The runner speaks only these Protocols; it never sees a SCPI string. Drivers
 (:mod:`loopwright.instruments.driver`) implement them for a command dialect.
@@ -161,3 +161,21 @@ class LoopSwitch(Protocol):
 
     def close(self) -> None:
         """Leave the loop open and release the instrument."""
+
+
+@runtime_checkable
+class ProbeSwitch(Protocol):
+    """Something that puts channel 2's probe on channel 1's node (a channel calibration).
+
+    Joined, both channels see one voltage, so channel 2 / channel 1 is the channels'
+    own mismatch (probes, cables, inputs). A relay box may be both a
+    :class:`LoopSwitch` and a ProbeSwitch.
+    """
+
+    can_join_probes: bool
+
+    def set_probes_joined(self, joined: bool) -> None:
+        """Join the probes on one node (True) or put channel 2's back on its own (False)."""
+
+    def close(self) -> None:
+        """Leave the probes apart and release the instrument."""

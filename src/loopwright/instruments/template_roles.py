@@ -1,4 +1,4 @@
-"""Role objects driven by a driver file's templates: generator, scope, loop switch.
+"""Role objects driven by a driver file's templates: generator, scope, loop/probe switch.
 
 Every operation first checks and formats all its values (limits, integer-ness,
 channel numbers, fixed word sets, bench caps) and only then writes, so a refused
@@ -507,7 +507,41 @@ class TemplateSwitch(TemplateInstrument):
 
     def read_closed(self) -> bool:
         """Read the switch state back (needs ``readback: closed:``)."""
-        state = self._need("readback").closed
+        return self._state(self._need("readback").closed)
+
+    @property
+    def can_join_probes(self) -> bool:
+        """True when the driver has ``join_probes`` / ``separate_probes`` commands."""
+        commands = getattr(self.spec, "commands", None)
+        return commands is not None and commands.join_probes is not None
+
+    def set_probes_joined(self, joined: bool) -> None:
+        """Put channel 2's probe on channel 1's node (True) or back on its own (False).
+
+        Raises
+        ------
+        DriverError
+            ``joined`` is not a bool, or the driver cannot join probes; nothing was sent.
+        """
+        if not isinstance(joined, bool | np.bool_):
+            raise DriverError(f"joined must be True or False, got {joined!r}")
+        if not self.can_join_probes:
+            raise DriverError(f"driver {self.spec.name!r} has no join_probes /"
+                              " separate_probes commands; this switch cannot join the"
+                              " probes (use switch: prompt on the calibrate step)")
+        commands = self.spec.commands
+        self.send(list(commands.join_probes if joined else commands.separate_probes),
+                  "set_probes_joined")
+
+    def read_probes_joined(self) -> bool:
+        """Read the probe relay back (needs ``readback: probes_joined:``)."""
+        readback = self._need("readback")
+        if readback.probes_joined is None:
+            raise DriverError(f"driver {self.spec.name!r} has no 'readback: probes_joined'"
+                              " query")
+        return self._state(readback.probes_joined)
+
+    def _state(self, state: Any) -> bool:
         reply = self.session.query(state.query).strip()
         if reply in state.true_replies:
             return True
@@ -517,7 +551,9 @@ class TemplateSwitch(TemplateInstrument):
                               f" {reply!r}")
 
     def teardown(self) -> None:
-        """Leave the loop open, then the driver's teardown sequence."""
+        """Leave the loop open and the probes apart, then the driver's teardown sequence."""
         if getattr(self.spec, "commands", None) is not None:
             self.set_closed(False)
+            if self.can_join_probes:
+                self.set_probes_joined(False)
         super().teardown()

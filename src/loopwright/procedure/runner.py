@@ -399,18 +399,28 @@ class Runner:
             self.progress.message("channel calibration already stored; kept")
             return
         step = self.procedure.calibration_plan(index)
-        if step.text:
+        probes = self.conn.switch if step.switch == "relay" else None
+        if step.switch == "relay":
+            if probes is None or not getattr(probes, "can_join_probes", False):
+                raise RunError("calibrate_channels with switch: relay needs a switch on the"
+                               " bench whose driver can join the probes")
+            probes.set_probes_joined(True)
+        elif step.text:
             self._prompt(index, step.text)
         plan = frequency_plan(step)
         self.progress.start_step(step.label or "channel calibration", len(plan))
         mismatch = []
-        for frequency_hz in plan:
-            result = self._retrying(
-                lambda f=float(frequency_hz): self._measure_at(step, f, calibrating=True),
-                float(frequency_hz))
-            mismatch.append(result.gain)
-            self.progress.point(-1, float(frequency_hz), result.gain_db, result.phase_deg,
-                                result.flags)
+        try:
+            for frequency_hz in plan:
+                result = self._retrying(
+                    lambda f=float(frequency_hz): self._measure_at(step, f, calibrating=True),
+                    float(frequency_hz))
+                mismatch.append(result.gain)
+                self.progress.point(-1, float(frequency_hz), result.gain_db,
+                                    result.phase_deg, result.flags)
+        finally:
+            if probes is not None:
+                probes.set_probes_joined(False)
         self.folder.write_calibration(plan, mismatch)
         self._load_existing_calibration()
 

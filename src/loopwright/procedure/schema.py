@@ -247,7 +247,8 @@ class Bench(_Model):
 
     @property
     def has_switch(self) -> bool:
-        """True if a loop switch can close the loop (a real switch or the simulated one)."""
+        """True if a switch can close the loop or join the probes (a real switch or the
+        simulated relay box)."""
         return self.switch is not None or self.simulated is not None
 
 
@@ -569,11 +570,22 @@ class CalibrateStep(_PlanKeys):
     """Both probes on one node: the channel mismatch over frequency.
 
     Without plan keys (and without an amplitude) it takes them from the next sweep.
+    ``switch: prompt`` (the default) leaves joining the probes to the operator (``text``
+    is shown first); ``switch: relay`` joins them with the bench's switch and separates
+    them again afterwards.
     """
 
     kind: Literal["calibrate_channels"]
+    switch: Literal["relay", "prompt"] = Field(
+        "prompt", description="who puts both probes on one node: the switch or the operator")
     text: LongText | None = Field(
         None, description="operator instruction shown first (probes on one node)")
+
+    @model_validator(mode="after")
+    def _text_for_prompt(self) -> CalibrateStep:
+        if self.text is not None and self.switch != "prompt":
+            raise ValueError("text applies to switch: prompt (the relay needs no operator)")
+        return self
 
 
 class ClosedLoopStep(_Model):
@@ -921,9 +933,15 @@ def check_against_bench(procedure: Procedure, bench: Bench) -> None:
     SafetyError
         Naming the procedure file, line and field, the value and the cap.
     InputError
-        A closed_loop_check with ``switch: relay`` on a bench without a loop switch.
+        A closed_loop_check or calibrate_channels step with ``switch: relay`` on a bench
+        without a switch.
     """
     for index, step in enumerate(procedure.steps):
+        if isinstance(step, CalibrateStep) and step.switch == "relay" and not bench.has_switch:
+            raise InputError(
+                f"{_where(procedure, ('steps', index, 'switch'))}: switch: relay needs a"
+                " 'switch' instrument in the bench file (a relay that joins the probes);"
+                " use switch: prompt otherwise")
         if isinstance(step, ClosedLoopStep):
             if step.switch == "relay" and not bench.has_switch:
                 raise InputError(
