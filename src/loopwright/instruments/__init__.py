@@ -34,6 +34,7 @@ from loopwright.instruments.roles import (
     Generator,
     GeneratorSettings,
     LoopSwitch,
+    ProbeSwitch,
     Scope,
 )
 from loopwright.instruments.session import Session, TrafficLog
@@ -54,6 +55,7 @@ __all__ = [
     "GeneratorSettings",
     "LoadedDriver",
     "LoopSwitch",
+    "ProbeSwitch",
     "Scope",
     "Session",
     "TemplateGenerator",

@@ -100,7 +100,7 @@ def _cross_check(spec: DriverSpec, source: YamlSource) -> None:
     if commands is None:
         return
     for op in type(commands).model_fields:
-        templates = getattr(commands, op)
+        templates = getattr(commands, op) or []  # an optional operation left out
         for index, template in enumerate(templates):
             for field in template_fields(template):
                 if field not in NON_NUMERIC and field not in spec.values:
