@@ -45,7 +45,7 @@ def _from_source(source: YamlSource, overrides: dict[str, Any]) -> DUTModel:
     if name is None:
         raise InputError(f"required field is missing (one of: {_known()})",
                          path=source.path, line=source.line_of(()), field="model")
-    if name not in DUTS:
+    if not isinstance(name, str) or name not in DUTS:
         raise source.error(("model",), f"unknown DUT model {name!r}; known: {_known()}")
     cls = DUTS[name]
     if overrides:

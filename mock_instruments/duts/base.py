@@ -27,7 +27,8 @@ from mock_instruments.lti import Rational, StateSpace
 class DUTParams(BaseModel):
     """Base of every DUT's parameter model (unknown keys are refused)."""
 
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # NaN and infinity are refused: no circuit has them (allow_inf_nan=False).
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
     model: str
     description: str | None = None

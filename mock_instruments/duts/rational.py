@@ -32,11 +32,15 @@ Root = float | str
 def _parse_root(value: Root) -> complex:
     if isinstance(value, str):
         try:
-            return complex(value.replace(" ", "").replace("i", "j"))
+            root = complex(value.replace(" ", "").replace("i", "j"))
         except ValueError as exc:
             raise ValueError(f"not a number or a complex number like '-100+2000j': {value!r}") \
                 from exc
-    return complex(value)
+    else:
+        root = complex(value)
+    if not (np.isfinite(root.real) and np.isfinite(root.imag)):
+        raise ValueError(f"a root must be finite, got {value!r}")
+    return root
 
 
 def _complete_pairs(roots: list[complex]) -> list[complex]:

@@ -143,8 +143,16 @@ def loads_yaml(text: str, path: str = "<string>") -> YamlSource:
         line = mark.line + 1 if mark is not None else None
         problem = exc.problem or str(exc)
         raise InputError(f"not valid YAML: {problem}", path=path, line=line) from exc
+    except yaml.reader.ReaderError as exc:
+        # a control character YAML does not allow; its text spans several lines
+        line = text[: exc.position].count("\n") + 1
+        char = exc.character
+        if not isinstance(char, int):
+            char = ord(str(char)[:1] or "?")
+        raise InputError(f"not valid YAML: character U+{char:04X} is not allowed in YAML text",
+                         path=path, line=line) from exc
     except yaml.YAMLError as exc:
-        raise InputError(f"not valid YAML: {exc}", path=path) from exc
+        raise InputError("not valid YAML: " + " ".join(str(exc).split()), path=path) from exc
     if node is None:
         raise InputError("the file is empty; see the commented examples in the docs",
                          path=path, line=1)

@@ -122,7 +122,7 @@ def load_driver(path: str | Path) -> LoadedDriver:
     if not isinstance(source.data, dict):
         raise source.error((), "a driver file is a mapping of keys (name, role, ...)")
     role = source.data.get("role")
-    if role not in ROLE_MODELS:
+    if not isinstance(role, str) or role not in ROLE_MODELS:
         raise source.error(("role",), f"role must be one of {', '.join(ROLES)} (got {role!r})")
     spec = validate(ROLE_MODELS[role], source)
     _cross_check(spec, source)  # type: ignore[arg-type]
