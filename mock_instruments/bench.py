@@ -260,9 +260,10 @@ class SimulatedBench:
         probe_delay_s = float(self.impairments.channel2_delay_s)
         # channel 1; channel 2 on its own node; channel 2 on channel 1's node (joined).
         # All three keep their state across generator changes, so joining is seamless.
+        probe = mismatch.realise()
         self._ch = [_Channel(ch1.realise(), 0.0),
-                    _Channel((ch2 * mismatch).realise(), self.dut.delay_s + probe_delay_s),
-                    _Channel((ch1 * mismatch).realise(), probe_delay_s)]
+                    _Channel(_series(ch2.realise(), probe), self.dut.delay_s + probe_delay_s),
+                    _Channel(_series(ch1.realise(), probe), probe_delay_s)]
         gain, limit = self.dut.stage_gain_and_limit()
         self._stage_gain = gain
         self._stage_limit = limit
@@ -497,6 +498,42 @@ class SimulatedBench:
                 records[number] = signal_chain.quantise(volts, state.scale_v_per_div,
                                                         state.offset_v, imp.adc_bits)
             return records
+
+
+@dataclass(frozen=True)
+class _Series(StateSpace):
+    """``second`` driven by ``first``'s output; states ``[first's, second's]``.
+
+    The steady response is the product of the parts' own (a DUT realisation with its
+    own steady response, e.g. a replayed board's measured one, keeps it).
+    """
+
+    first: StateSpace | None = field(default=None, compare=False)
+    second: StateSpace | None = field(default=None, compare=False)
+
+    def state_phasor(self, omega_rad_s: float) -> np.ndarray:
+        assert self.first is not None and self.second is not None
+        x1 = self.first.state_phasor(omega_rad_s)
+        x2 = self.second.state_phasor(omega_rad_s) * self.first.response(omega_rad_s)
+        return np.concatenate([x1, x2])
+
+    def response(self, omega_rad_s: float) -> complex:
+        assert self.first is not None and self.second is not None
+        return self.first.response(omega_rad_s) * self.second.response(omega_rad_s)
+
+
+def _series(first: StateSpace, second: StateSpace) -> StateSpace:
+    """``first`` followed by ``second`` (``first`` itself when ``second`` is a unit gain)."""
+    if second.order == 0 and second.D == 1.0:
+        return first
+    n1, n2 = first.order, second.order
+    a = np.zeros((n1 + n2, n1 + n2))
+    a[:n1, :n1] = first.A
+    a[n1:, :n1] = np.outer(second.B, first.C)
+    a[n1:, n1:] = second.A
+    b = np.concatenate([first.B, second.B * first.D])
+    c = np.concatenate([second.D * first.C, second.C])
+    return _Series(a, b, c, float(second.D * first.D), first=first, second=second)
 
 
 def _channel2_mismatch_tf(impairments: Impairments) -> Rational:
