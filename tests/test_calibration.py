@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from loopwright.errors import InputError
+from loopwright.errors import InputError, RunError
 from loopwright.procedure.plan import frequency_plan
 from loopwright.procedure.runner import RunOptions, run_procedure
 from loopwright.procedure.schema import check_against_bench, load_bench, load_procedure
@@ -212,3 +212,34 @@ def test_prompt_is_the_default_and_text_belongs_to_it(tmp_path) -> None:
                             "  - kind: sweep\n" + SWEEP_KEYS, name="wrong")
     with pytest.raises(InputError, match=r"wrong\.yaml:\d+: steps\[0\].*text applies to"):
         load_procedure(wrong)
+
+
+def test_relay_calibration_needs_a_switch_that_can_join_probes(tmp_path, start_sim_bench
+                                                               ) -> None:
+    """A switch whose driver has no probe commands fails the run with the reason in the
+    manifest; nothing was joined and the generator output is off."""
+    server = _serve(start_sim_bench, **MISMATCH)
+    drivers = tmp_path / "drivers"
+    drivers.mkdir()
+    shipped = Path(__file__).resolve().parents[1] / "drivers" / "switch-relay.yaml"
+    kept = [line for line in shipped.read_text().splitlines()
+            if "probes" not in line.split(":")[0]]
+    (drivers / "relay-loop-only.yaml").write_text(
+        "\n".join(kept).replace("name: switch-relay", "name: relay-loop-only") + "\n")
+    bench_path = _bench_file(tmp_path, server.resources)
+    bench_path.write_text(bench_path.read_text().replace(
+        f"  resource: '{server.resources['switch']}'\n",
+        f"  resource: '{server.resources['switch']}'\n  driver: relay-loop-only\n"))
+    procedure = _procedure_file(
+        tmp_path, "  - kind: calibrate_channels\n    switch: relay\n"
+        "  - kind: sweep\n" + SWEEP_KEYS)
+    with pytest.raises(RunError, match="run failed"):
+        run_procedure(procedure, bench_path,
+                      _options(tmp_path, extra_driver_dirs=(drivers,)))
+    (run_dir,) = (tmp_path / "runs").iterdir()
+    manifest = json.loads((run_dir / "manifest.json").read_text())
+    assert manifest["status"] == "failed"
+    assert "can join the probes" in manifest["reason"]
+    assert server.instruments["switch"].closings[PROBE_RELAY] == 0
+    assert server.bench.generator.output_on is False
+    assert not (run_dir / "calibration.csv").exists()
