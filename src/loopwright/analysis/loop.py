@@ -397,6 +397,8 @@ def _resonances(curve: _Curve) -> list[Resonance]:
         width = None
         if x_low is not None and x_high is not None:
             width = float(np.exp(x_high) - np.exp(x_low))
+            # half-power points that meet in one float resolve no width (and no Q)
+            width = width if width > 0.0 else None
         q = _pole_pair_q(curve.model, f_peak)
         method = "pole_pair" if q is not None else None
         if q is None and width is not None:
