@@ -42,10 +42,10 @@ CAPTURE_HZ = 12_500.0
 #: Samples kept of the example capture: 5 cycles at 2 MS/s.
 CAPTURE_ROWS = 800
 
-FAST = settings(max_examples=80, deadline=None, derandomize=True,
+FAST = settings(max_examples=60, deadline=None, derandomize=True,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
                                        HealthCheck.function_scoped_fixture])
-HEAVY = settings(max_examples=200, deadline=None, derandomize=True,
+HEAVY = settings(max_examples=120, deadline=None, derandomize=True,
                  suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
                                         HealthCheck.function_scoped_fixture])
 

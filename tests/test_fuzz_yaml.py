@@ -55,10 +55,10 @@ LOADERS: dict[str, Callable[[Path], Any]] = {
 KINDS = tuple(EXAMPLES)
 
 #: Examples per test (CI runs them all; the slow-marked ones too).
-FAST = settings(max_examples=60, deadline=None, derandomize=True,
+FAST = settings(max_examples=40, deadline=None, derandomize=True,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
                                        HealthCheck.function_scoped_fixture])
-HEAVY = settings(max_examples=150, deadline=None, derandomize=True,
+HEAVY = settings(max_examples=40, deadline=None, derandomize=True,
                  suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
                                        HealthCheck.function_scoped_fixture])
 
@@ -333,10 +333,10 @@ def test_random_bytes_end_in_our_error(kind, raw, workdir, capsys):
 @HEAVY
 @given(data=st.data())
 def test_many_mutations_end_in_our_error(kind, data, workdir, capsys):
-    """Longer chains of mutations (up to 8), data and text mixed."""
+    """Longer chains of mutations (up to 5), data and text mixed."""
     example = data.draw(st.sampled_from(EXAMPLES[kind]), label="example")
     parsed = yaml.safe_load(example.read_text())
-    for _ in range(data.draw(st.integers(2, 8), label="mutations")):
+    for _ in range(data.draw(st.integers(2, 5), label="mutations")):
         parsed = mutate_data(data.draw, parsed)
     raw = data.draw(text_mutation(dump(parsed)), label="mutated")
     run_case(kind, raw, workdir, capsys, f"{kind}-heavy")

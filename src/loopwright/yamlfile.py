@@ -32,6 +32,8 @@ MAX_NODES = 200_000
 MAX_BYTES = 8 * 1024 * 1024
 
 FieldPath = tuple[str | int, ...]
+#: The only tags a mapping or a list may carry (the ones YAML gives them by default).
+_PLAIN_TAGS = ("tag:yaml.org,2002:map", "tag:yaml.org,2002:seq")
 ModelT = TypeVar("ModelT", bound=BaseModel)
 
 
@@ -96,6 +98,11 @@ class _Builder:
                 " write the values out instead of nesting aliases",
                 path=self.path, line=node.start_mark.line + 1, field=format_loc(loc) or None)
         self.lines.setdefault(loc, node.start_mark.line + 1)
+        if isinstance(node, yaml.MappingNode | yaml.SequenceNode) and node.tag not in _PLAIN_TAGS:
+            # e.g. !!python/object/apply on a list: refused, not read as a plain list
+            raise InputError(f"the tag {node.tag!r} is not allowed; write plain YAML",
+                             path=self.path, line=node.start_mark.line + 1,
+                             field=format_loc(loc) or None)
         if isinstance(node, yaml.MappingNode):
             out: dict[str, Any] = {}
             for key_node, value_node in node.value:
@@ -129,7 +136,8 @@ class _Builder:
         try:
             return self.constructor.construct_object(node, deep=True)
         except yaml.YAMLError as exc:
-            raise InputError(f"cannot read this value: {exc}", path=self.path,
+            problem = getattr(exc, "problem", None) or " ".join(str(exc).split())
+            raise InputError(f"cannot read this value: {problem}", path=self.path,
                              line=node.start_mark.line + 1,
                              field=format_loc(loc) or None) from exc
 

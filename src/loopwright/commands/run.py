@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from rich.console import Console
+from rich.markup import escape
 
 from loopwright.procedure.runner import RunOptions, RunOutcome, run_procedure
 
@@ -47,18 +48,20 @@ def print_outcome(outcome: RunOutcome, console: Console) -> None:
     summary = outcome.summary or {}
     verdict = summary.get("verdict", "none")
     colour = {"pass": "green", "fail": "red"}.get(verdict, "white")
-    console.print(f"run {outcome.status}: {outcome.run_dir}")
+    console.print(f"run {outcome.status}: {escape(str(outcome.run_dir))}")
     if outcome.reason:
-        console.print(f"  reason: {outcome.reason}")
+        console.print(f"  reason: {escape(outcome.reason)}")
     if outcome.status == "complete":
         console.print(f"  verdict: [bold {colour}]{verdict.upper()}[/]")
         for limit in summary.get("limits", []):
             value = limit.get("value")
             shown = "not reached" if value is None else f"{value:.4g} {limit.get('unit', '')}"
             mark = "ok  " if limit.get("passed") else "FAIL"
-            console.print(f"    {mark} {limit['name']}: {shown}", highlight=False)
+            console.print(f"    {mark} {escape(limit['name'])}: {escape(shown)}",
+                          highlight=False)
     else:
-        console.print(f"  continue it with: loopwright run ... --resume {outcome.run_dir}")
+        console.print("  continue it with: loopwright run ... --resume"
+                      f" {escape(str(outcome.run_dir))}")
     console.print(f"  generator output off: {'yes' if outcome.output_off else 'NOT CONFIRMED'}")
 
 

@@ -8,6 +8,7 @@ terminal, so an overnight log file stays readable; nothing with ``quiet``.
 from __future__ import annotations
 
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import (
     BarColumn,
     MofNCompleteColumn,
@@ -68,9 +69,11 @@ class RunProgress:
     def start_step(self, description: str, total: int) -> None:
         """A new step with ``total`` planned points."""
         if self._progress is not None:
-            self._task = self._progress.add_task(description, total=total, last="")
+            # labels come from files: shown as text, never read as rich markup
+            self._task = self._progress.add_task(escape(description), total=total, last="")
         elif not self.quiet:
-            self.console.print(f"{description}: {total} points planned", highlight=False)
+            self.console.print(f"{escape(description)}: {total} points planned",
+                               highlight=False)
 
     def add_planned(self, extra: int) -> None:
         """Adaptive refinement added points to the present step."""
@@ -94,8 +97,8 @@ class RunProgress:
     def message(self, text: str) -> None:
         """A line for the operator (shown even in quiet mode when it is a warning)."""
         if not self.quiet:
-            self.console.print(text, highlight=False)
+            self.console.print(text, highlight=False, markup=False)
 
     def warn(self, text: str) -> None:
         """A warning, always shown."""
-        self.console.print(f"[bold yellow]warning:[/] {text}")
+        self.console.print(f"[bold yellow]warning:[/] {escape(text)}")

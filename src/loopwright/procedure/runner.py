@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 from rich.console import Console
+from rich.markup import escape
 
 from loopwright.analysis import FrequencyResponse, analyze_loop
 from loopwright.dsp import fit_sine_4p
@@ -435,7 +436,7 @@ class Runner:
         if self.options.resume is not None and self.folder.done_points and any(
                 int(p["step"]) > index for p in self.folder.done_points):
             return  # the steps after this prompt already ran before the interruption
-        self.console.print(f"[bold]operator:[/] {text}")
+        self.console.print(f"[bold]operator:[/] {escape(text)}")
         try:
             self.options.input_fn("Press Enter to continue ")
         except EOFError as exc:
@@ -473,7 +474,7 @@ class Runner:
             return
         text = (step.close_text or "Close the loop now.") if closed else (
             step.open_text or "Open the loop again.")
-        self.console.print(f"[bold]operator:[/] {text}")
+        self.console.print(f"[bold]operator:[/] {escape(text)}")
         try:
             self.options.input_fn("Press Enter when done ")
         except EOFError as exc:
