@@ -405,6 +405,8 @@ class Session:
         try:
             return float(reply)
         except ValueError as exc:
+            # a reply that is not the answer may be a stale one: resynchronise first
+            self._needs_sync = True
             raise InstrumentError(f"{self.resource_name}: {command!r} answered {reply!r},"
                                   " not a number") from exc
 
