@@ -239,7 +239,7 @@ def _numeric_1d(arr: np.ndarray, path: Path, key: str) -> NDArray[np.float64]:
     bad = ~np.isfinite(out)
     if bad.any():
         i = int(np.argmax(bad))
-        raise InputError(f"sample {i} is {out[i]!r}", path=path, field=f"{key}[{i}]")
+        raise InputError(f"sample {i} is {float(out[i])!r}", path=path, field=f"{key}[{i}]")
     return out
 
 
@@ -259,7 +259,8 @@ def _sample_rate(t: NDArray, path: Path, line_of, field: str) -> float:
     if bad.any():
         i = int(np.argmax(bad))
         raise InputError(
-            f"time does not increase ({t[i]!r} then {t[i + 1]!r}): samples must be in time order",
+            f"time does not increase ({float(t[i])!r} then {float(t[i + 1])!r}): samples must"
+            " be in time order",
             path=path,
             **where(i),
         )
