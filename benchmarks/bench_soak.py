@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import resource
+import sys
 import tempfile
 import threading
 import time
@@ -74,7 +75,7 @@ def main() -> None:
                 with files[0].open("rb") as handle:
                     rows = sum(chunk.count(b"\n") for chunk in iter(
                         lambda: handle.read(1 << 20), b"")) - 1
-                samples.append((rows, rss_mib()))
+                samples.append((rows, rss_mib(), sys.getallocatedblocks()))
                 if rows >= next_fault:
                     name, arm = faults[len(injected) % len(faults)]
                     arm()
@@ -94,9 +95,9 @@ def main() -> None:
     server.close()
     points = load_run(outcome.run_dir).points
     peak_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    early = [rss for rows, rss in samples if rows >= args.points // 10]
-    rss_10 = early[0] if early else float("nan")
-    rss_end = samples[-1][1] if samples else float("nan")
+    early = [(rss, blocks) for rows, rss, blocks in samples if rows >= args.points // 10]
+    rss_10, blocks_10 = early[0] if early else (float("nan"), 0)
+    rss_end, blocks_end = (samples[-1][1], samples[-1][2]) if samples else (float("nan"), 0)
     planned = np.geomspace(100, 100000, args.points)
     on_disk_once = (len(points) == args.points and points["frequency_hz"].is_unique
                     and np.allclose(np.sort(points["frequency_hz"]), planned, rtol=1e-12))
@@ -108,6 +109,10 @@ def main() -> None:
     print(f"wall time: {wall_s:.1f} s ({1000 * wall_s / args.points:.1f} ms per point)")
     print(f"RSS at 10 %: {rss_10:.1f} MiB; at the end: {rss_end:.1f} MiB;"
           f" peak RSS: {peak_mib:.1f} MiB")
+    rows_between = max(1, samples[-1][0] - args.points // 10) if samples else 1
+    print(f"Python heap blocks (runner and simulated bench share this process): "
+          f"{blocks_10} at 10 %, {blocks_end} at the end, "
+          f"{(blocks_end - blocks_10) / rows_between:.1f} blocks per point")
     print(f"output off confirmed: {outcome.output_off}; run folder: {outcome.run_dir}")
 
 

@@ -5,8 +5,9 @@
    loopback TCP. Overhead = wall time of the sweep / (sum over points of the settling
    wait and the record durations actually acquired). Target: <= 1.15.
 2. The demo (``loopwright demo``) wall time.
-3. Adaptive refinement vs uniform plans: points needed for the phase margin within
-   0.1 deg of the model's exact value (fast mode, no noise).
+3. Adaptive refinement vs uniform plans: points and phase-margin error against the
+   model's exact value (fast mode, no noise): one point per decade plus up to 4 points
+   at the crossings, against uniform plans of 1 to 8 points per decade.
 
 Run: ``python benchmarks/bench_sweep.py [--latency-ms 1] [--skip-demo]``
 """
@@ -119,8 +120,8 @@ def adaptive_vs_uniform(work: Path) -> None:
                 "    amplitude_vpp: 0.2\n    settle_s: 0\n    settle_cycles: 0\n"
                 "    cycles_per_record: 10\n    min_samples: 2000\n")
         if refine:
-            text += ("    refine:\n      max_extra_points: 40\n      max_phase_step_deg: 10\n"
-                     "      max_gain_step_db: 3\n")
+            text += ("    refine:\n      max_extra_points: 4\n      max_phase_step_deg: 60\n"
+                     "      max_gain_step_db: 30\n      near_crossings: true\n")
         procedure.write_text(text)
         outcome = run_procedure(procedure, bench,
                                 RunOptions(out_dir=work / name, quiet=True, assume_yes=True,
@@ -129,12 +130,12 @@ def adaptive_vs_uniform(work: Path) -> None:
         return outcome.summary["points"], abs(figures["phase_margin_deg"]
                                               - exact["phase_margin_deg"])
 
-    refined_points, refined_err = sweep("adaptive", 2, True)
-    print(f"adaptive (2 per decade + refinement): {refined_points} points,"
-          f" phase margin error {refined_err:.4f} deg")
-    for ppd in (2, 3, 4, 6, 8, 12, 16, 24):
-        points, err = sweep(f"uniform{ppd}", ppd, False)
-        print(f"uniform {ppd:>2} per decade: {points:3d} points, phase margin error"
+    refined_points, refined_err = sweep("adaptive", 1, True)
+    print(f"adaptive (1 per decade + up to 4 points at the crossings): {refined_points}"
+          f" points, phase margin error {refined_err:.4f} deg")
+    for ppd in (1, 1.5, 2, 2.5, 3, 4, 6, 8):
+        points, err = sweep(f"uniform{int(ppd * 10)}", ppd, False)
+        print(f"uniform {ppd:>3} per decade: {points:3d} points, phase margin error"
               f" {err:.4f} deg")
     server.close()
 
