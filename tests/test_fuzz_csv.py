@@ -16,6 +16,7 @@ own error, and an :class:`InputError` about the file names it.
 
 from __future__ import annotations
 
+import contextlib
 import io
 import json
 import math
@@ -67,10 +68,13 @@ def workdir(tmp_path_factory: pytest.TempPathFactory) -> Path:
 def report_counts(request: pytest.FixtureRequest) -> Iterator[None]:
     yield
     reporter = request.config.pluginmanager.getplugin("terminalreporter")
-    if reporter is not None and CASES:
+    capture = request.config.pluginmanager.getplugin("capturemanager")
+    if reporter is None or not CASES:
+        return
+    with capture.global_and_fixture_disabled() if capture else contextlib.nullcontext():
         reporter.write_line("")
-        reporter.write_line(f"CSV/npz fuzz cases run: {sum(CASES.values())} "
-                            + ", ".join(f"{k}={v}" for k, v in sorted(CASES.items())))
+        reporter.write_line(f"CSV/npz fuzz cases run: {sum(CASES.values())} ("
+                            + ", ".join(f"{k} {v}" for k, v in sorted(CASES.items())) + ")")
 
 
 def read_rows(path: Path, keep: int | None = None) -> tuple[list[str], list[list[str]]]:
