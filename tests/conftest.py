@@ -26,11 +26,18 @@ fake_clock
 from __future__ import annotations
 
 import contextlib
+import os
 from collections.abc import Callable, Iterator
 from typing import TYPE_CHECKING, Any
 
 import pytest
 import pyvisa
+from hypothesis import settings
+
+# CI is reproducible: the same examples on every run (a fixed seed per test).
+settings.register_profile("ci", derandomize=True, print_blob=True)
+if os.environ.get("CI") == "true":
+    settings.load_profile("ci")
 
 if TYPE_CHECKING:
     from mock_instruments.bench import Impairments, SimulatedBench

@@ -44,13 +44,23 @@ def _parse_root(value: Root) -> complex:
 
 
 def _complete_pairs(roots: list[complex]) -> list[complex]:
-    """Add the conjugate of every complex root that lacks one."""
+    """Add the conjugate of every complex root that lacks one.
+
+    Multiplicity counts: a pair given twice (a double pole pair) gets two conjugates;
+    a root given together with its own conjugate gets none.
+    """
     out = list(roots)
+    unmatched = list(roots)
     for root in roots:
-        if abs(root.imag) > 0:
-            match = [r for r in out if abs(r - root.conjugate()) <= 1e-12 * max(abs(root), 1)]
-            if not match:
-                out.append(root.conjugate())
+        if root not in unmatched or abs(root.imag) == 0:
+            continue
+        unmatched.remove(root)
+        tol = 1e-12 * max(abs(root), 1)
+        partner = next((r for r in unmatched if abs(r - root.conjugate()) <= tol), None)
+        if partner is not None:
+            unmatched.remove(partner)
+        else:
+            out.append(root.conjugate())
     return out
 
 
