@@ -12,7 +12,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from loopwright.dsp import estimate_point
+from loopwright.dsp import estimate_point, wrap_phase_deg
 from loopwright.errors import DriverError, EstimationError
 from loopwright.instruments.roles import SCREEN_DIVISIONS, Capture, ChannelSettings, Scope
 
@@ -243,7 +243,6 @@ class PointMeasurer:
             phase_deg_std = max(fit_phase_std, float(np.std(ph, ddof=1)) / math.sqrt(count))
         else:
             gain_db_std, phase_deg_std = fit_gain_std, fit_phase_std
-        estimates[-1]
         frequency_hz = float(np.mean([e.frequency_hz for e in estimates]))
         if correction is not None:
             gain = gain / correction(frequency_hz)
@@ -263,7 +262,7 @@ class PointMeasurer:
             frequency_hz=frequency_hz,
             gain=gain,
             gain_db=20 * math.log10(max(abs(gain), 1e-300)),
-            phase_deg=_wrap_deg(math.degrees(math.atan2(gain.imag, gain.real))),
+            phase_deg=wrap_phase_deg(math.degrees(math.atan2(gain.imag, gain.real))),
             gain_db_std=gain_db_std,
             phase_deg_std=phase_deg_std,
             reference_amplitude_v=float(np.mean([e.reference.amplitude_v for e in estimates])),
@@ -300,7 +299,7 @@ class PointMeasurer:
             except EstimationError:
                 return False  # too few cycles per half to tell
         k = self.quality.unsettled_sigma
-        dphase = abs(_wrap_deg(first.phase_deg - second.phase_deg))
+        dphase = abs(wrap_phase_deg(first.phase_deg - second.phase_deg))
         dgain = abs(first.gain_db - second.gain_db)
         phase_tol = k * math.hypot(first.phase_deg_std, second.phase_deg_std) + 0.02
         gain_tol = k * math.hypot(first.gain_db_std, second.gain_db_std) + 0.002
@@ -311,9 +310,3 @@ def _phase_std_of_mean(estimates) -> float:
     gains = np.array([e.gain for e in estimates])
     phases = np.degrees(np.angle(gains / np.mean(gains)))
     return float(np.std(phases, ddof=1) / math.sqrt(len(gains)))
-
-
-def _wrap_deg(angle_deg: float) -> float:
-    """Wrap to (-180, 180]."""
-    wrapped = (angle_deg + 180.0) % 360.0 - 180.0
-    return 180.0 if wrapped == -180.0 else wrapped

@@ -33,12 +33,12 @@ from typing import Any
 import numpy as np
 import yaml
 
-from loopwright.analysis import FrequencyResponse, analyze_loop
 from loopwright.errors import EstimationError, InputError, LoopwrightError
 from loopwright.instruments.roles import Capture, ChannelSettings
 from loopwright.procedure.measure import PointMeasurer, QualityLimits
 from loopwright.procedure.replay import check_replayable
-from loopwright.procedure.schema import Procedure, SweepStep, evaluate_limits, loads_procedure
+from loopwright.procedure.results import loop_figures, point_row, summary_record
+from loopwright.procedure.schema import Procedure, SweepStep, loads_procedure
 from loopwright.store.load import mismatch_at
 from loopwright.store.names import utc_iso
 from loopwright.store.writer import CALIBRATION_FILE, CAPTURES_DIR, CLOSED_LOOP_FILE, RunFolder
@@ -135,33 +135,14 @@ def recompute_point(row: dict[str, Any], capture: dict[str, Any], step: Any, sig
                              estimator=estimator, quality=quality)
     result = measurer.measure(float(row["frequency_hz"]), averages=1, autorange=False,
                               correction=correction)
-    # the columns and formulas of Runner._store
-    gain = sign * result.gain
+    # the columns and formulas of the runner; the scales as stored (a record holds volts)
     return {
         "index": int(row["index"]),
         "timestamp_utc": row.get("timestamp_utc") or None,
-        "step": int(row["step"]),
-        "frequency_hz": float(row["frequency_hz"]),
-        "amplitude_vpp": float(row["amplitude_vpp"]),
-        "gain_db": 20 * math.log10(max(abs(gain), 1e-300)),
-        "phase_deg": math.degrees(math.atan2(gain.imag, gain.real)),
-        "gain_re": gain.real,
-        "gain_im": gain.imag,
-        "gain_db_std": result.gain_db_std,
-        "phase_deg_std": result.phase_deg_std,
-        "reference_amplitude_v": result.reference_amplitude_v,
-        "response_amplitude_v": result.response_amplitude_v,
-        "reference_snr_db": result.reference_snr_db,
-        "response_snr_db": result.response_snr_db,
-        "reference_thd_pct": result.reference_thd_pct,
-        "response_thd_pct": result.response_thd_pct,
+        **point_row(int(row["step"]), float(row["frequency_hz"]), float(row["amplitude_vpp"]),
+                    result, sign, int(row.get("refined") or 0)),
         "reference_scale_v_per_div": scales[REFERENCE],
         "response_scale_v_per_div": scales[RESPONSE],
-        "sample_rate_hz": result.sample_rate_hz,
-        "record_length": result.record_length,
-        "averages": result.averages,
-        "refined": int(row.get("refined") or 0),
-        "flags": result.flags,
     }
 
 
@@ -180,12 +161,8 @@ def loop_analysis(frequency_hz: Sequence[float], h: Sequence[complex]
     """The loop figures of one sweep as the runner computes them (sorted, unique f)."""
     if len(frequency_hz) < 2:
         return None
-    order = np.argsort(frequency_hz)
-    f = np.asarray(frequency_hz, dtype=float)[order]
-    gains = np.asarray(h, dtype=complex)[order]
-    keep = np.concatenate(([True], np.diff(f) > 0))
     try:
-        return analyze_loop(FrequencyResponse(f[keep], gains[keep])).to_dict()
+        return loop_figures(frequency_hz, h)
     except LoopwrightError:
         return None
 
@@ -306,16 +283,8 @@ def build_summary(procedure: Procedure,
         if figures is not None:
             analysis = figures
     closed_loop = (source_summary or {}).get("closed_loop")
-    limits, verdict = evaluate_limits(list(procedure.limits), analysis, closed_loop)
     flagged = sum(1 for p in folder.done_points if str(p.get("flags") or ""))
-    return {
-        "analysis": analysis,
-        "limits": limits,
-        "verdict": verdict,
-        "closed_loop": closed_loop,
-        "points": len(folder.done_points),
-        "flagged_points": flagged,
-    }
+    return summary_record(procedure, analysis, closed_loop, len(folder.done_points), flagged)
 
 
 __all__ = ["ReanalysisOutcome", "StoredCaptures", "build_summary", "loop_analysis",

@@ -23,7 +23,6 @@ import numpy as np
 from rich.console import Console
 from rich.markup import escape
 
-from loopwright.analysis import FrequencyResponse, analyze_loop
 from loopwright.dsp import fit_sine_4p
 from loopwright.errors import (
     EstimationError,
@@ -44,6 +43,7 @@ from loopwright.procedure.plan import (
     settle_time_s,
 )
 from loopwright.procedure.progress import RunProgress, format_frequency
+from loopwright.procedure.results import loop_figures, point_row, summary_record
 from loopwright.procedure.safety import OutputGuard, StopRequested
 from loopwright.procedure.schema import (
     Bench,
@@ -53,7 +53,6 @@ from loopwright.procedure.schema import (
     PromptStep,
     SweepStep,
     check_against_bench,
-    evaluate_limits,
     load_bench,
     load_procedure,
 )
@@ -308,31 +307,7 @@ class Runner:
     def _store(self, step_index: int, nominal_hz: float, amplitude_vpp: float,
                result: PointResult, refined: bool) -> complex:
         """Append one point; returns the stored (signed) H."""
-        gain = self.sign * result.gain
-        row = {
-            "step": step_index,
-            "frequency_hz": nominal_hz,
-            "amplitude_vpp": amplitude_vpp,
-            "gain_db": 20 * math.log10(max(abs(gain), 1e-300)),
-            "phase_deg": math.degrees(math.atan2(gain.imag, gain.real)),
-            "gain_re": gain.real,
-            "gain_im": gain.imag,
-            "gain_db_std": result.gain_db_std,
-            "phase_deg_std": result.phase_deg_std,
-            "reference_amplitude_v": result.reference_amplitude_v,
-            "response_amplitude_v": result.response_amplitude_v,
-            "reference_snr_db": result.reference_snr_db,
-            "response_snr_db": result.response_snr_db,
-            "reference_thd_pct": result.reference_thd_pct,
-            "response_thd_pct": result.response_thd_pct,
-            "reference_scale_v_per_div": result.reference_scale_v_per_div,
-            "response_scale_v_per_div": result.response_scale_v_per_div,
-            "sample_rate_hz": result.sample_rate_hz,
-            "record_length": result.record_length,
-            "averages": result.averages,
-            "refined": int(refined),
-            "flags": result.flags,
-        }
+        row = point_row(step_index, nominal_hz, amplitude_vpp, result, self.sign, refined)
         index = self.folder.append_point(row)
         if result.captures:
             capture = result.captures[-1]
@@ -340,7 +315,7 @@ class Runner:
                                      capture.volts[self.response_channel],
                                      capture.sample_rate_hz, nominal_hz, amplitude_vpp)
         self.progress.point(index, nominal_hz, row["gain_db"], row["phase_deg"], result.flags)
-        return gain
+        return complex(row["gain_re"], row["gain_im"])
 
     # ------------------------------------------------------------------ steps
 
@@ -385,13 +360,8 @@ class Runner:
         if len(measured_f) < 2:
             self.progress.warn(f"step {index + 1}: fewer than 2 points; no loop figures")
             return
-        order = np.argsort(measured_f)
-        f = np.asarray(measured_f)[order]
-        h = np.asarray(measured_h)[order]
-        keep = np.concatenate(([True], np.diff(f) > 0))
-        response = FrequencyResponse(f[keep], h[keep])
         try:
-            self.analysis = analyze_loop(response).to_dict()
+            self.analysis = loop_figures(measured_f, measured_h)
         except LoopwrightError as exc:
             self.progress.warn(f"step {index + 1}: no loop figures: {exc}")
 
@@ -531,17 +501,9 @@ class Runner:
     # ------------------------------------------------------------------ results
 
     def _summary(self) -> dict[str, Any]:
-        limits, verdict = evaluate_limits(list(self.procedure.limits), self.analysis,
-                                          self.closed_loop)
-        rows = _count_points(self.folder.path / "points.csv")
-        summary = {
-            "analysis": self.analysis,
-            "limits": limits,
-            "verdict": verdict,
-            "closed_loop": self.closed_loop,
-            "points": rows[0],
-            "flagged_points": rows[1],
-        }
+        points, flagged = _count_points(self.folder.path / "points.csv")
+        summary = summary_record(self.procedure, self.analysis, self.closed_loop, points,
+                                 flagged)
         self.folder.write_summary(summary)
         return summary
 
