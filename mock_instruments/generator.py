@@ -46,6 +46,9 @@ class SimulatedGenerator(SimulatedInstrument):
     max_amplitude_vpp: ClassVar[float]
     #: |offset| + amplitude / 2 may not exceed this.
     max_peak_v: ClassVar[float]
+    #: The one waveform: the word the dialect accepts and the word it answers.
+    sine_word: ClassVar[str]
+    sine_reply: ClassVar[str]
 
     def reset_state(self) -> None:
         self.bench.apply_generator(**DEFAULTS)
@@ -87,6 +90,53 @@ class SimulatedGenerator(SimulatedInstrument):
         if any(s != 1 for s in suffixes):
             raise CommandError(-114, "this generator has one output, 1")
 
+    # Handlers both dialects register (under their own headers).
+
+    def _set_shape(self, suffixes: tuple[int, ...], args: list[str]) -> None:
+        self._channel(suffixes)
+        parse_choice(expect_args(args, 1)[0], {self.sine_word: self.sine_reply})
+
+    def _get_shape(self, suffixes: tuple[int, ...], args: list[str]) -> str:
+        self._channel(suffixes)
+        expect_args(args, 0)
+        return self.sine_reply
+
+    def _set_frequency(self, suffixes: tuple[int, ...], args: list[str]) -> None:
+        self._channel(suffixes)
+        self.set_frequency(parse_number(expect_args(args, 1)[0]))
+
+    def _get_frequency(self, suffixes: tuple[int, ...], args: list[str]) -> str:
+        self._channel(suffixes)
+        expect_args(args, 0)
+        return format_number(self.bench.generator.frequency_hz)
+
+    def _set_amplitude(self, suffixes: tuple[int, ...], args: list[str]) -> None:
+        self._channel(suffixes)
+        self.set_amplitude(parse_number(expect_args(args, 1)[0]))
+
+    def _get_amplitude(self, suffixes: tuple[int, ...], args: list[str]) -> str:
+        self._channel(suffixes)
+        expect_args(args, 0)
+        return format_number(self.bench.generator.amplitude_vpp)
+
+    def _set_offset(self, suffixes: tuple[int, ...], args: list[str]) -> None:
+        self._channel(suffixes)
+        self.set_offset(parse_number(expect_args(args, 1)[0]))
+
+    def _get_offset(self, suffixes: tuple[int, ...], args: list[str]) -> str:
+        self._channel(suffixes)
+        expect_args(args, 0)
+        return format_number(self.bench.generator.offset_v)
+
+    def _set_output(self, suffixes: tuple[int, ...], args: list[str]) -> None:
+        self._channel(suffixes)
+        self.set_output(parse_bool(expect_args(args, 1)[0]))
+
+    def _get_output(self, suffixes: tuple[int, ...], args: list[str]) -> str:
+        self._channel(suffixes)
+        expect_args(args, 0)
+        return "1" if self.bench.generator.output_on else "0"
+
 
 class SourceTreeGenerator(SimulatedGenerator):
     """``generator-source-tree``: ``SOUR1:FREQ``, ``SOUR1:VOLT``, ``OUTP1 ON``..."""
@@ -98,38 +148,21 @@ class SourceTreeGenerator(SimulatedGenerator):
     min_amplitude_vpp = 1e-3
     max_amplitude_vpp = 10.0
     max_peak_v = 5.0
+    sine_word = "SINusoid"
+    sine_reply = "SIN"
 
     def reset_state(self) -> None:
         super().reset_state()
         self.amplitude_unit = "VPP"
 
     def define(self, tree: CommandTree) -> None:
-        tree.add("SOURce#:FUNCtion", command=self._set_function, query=self._get_function)
+        tree.add("SOURce#:FUNCtion", command=self._set_shape, query=self._get_shape)
         tree.add("SOURce#:FREQuency", command=self._set_frequency, query=self._get_frequency)
         tree.add("SOURce#:VOLTage", command=self._set_voltage, query=self._get_voltage)
         tree.add("SOURce#:VOLTage:UNIT", command=self._set_unit, query=self._get_unit)
         tree.add("SOURce#:VOLTage:OFFSet", command=self._set_offset, query=self._get_offset)
         tree.add("OUTPut#", command=self._set_output, query=self._get_output)
         tree.add("OUTPut#:STATe", command=self._set_output, query=self._get_output)
-
-    def _set_function(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        (word,) = expect_args(args, 1)
-        parse_choice(word, {"SINusoid": "SIN"})
-
-    def _get_function(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return "SIN"
-
-    def _set_frequency(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        self.set_frequency(parse_number(expect_args(args, 1)[0]))
-
-    def _get_frequency(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return format_number(self.bench.generator.frequency_hz)
 
     def _set_voltage(self, suffixes: tuple[int, ...], args: list[str]) -> None:
         self._channel(suffixes)
@@ -151,24 +184,6 @@ class SourceTreeGenerator(SimulatedGenerator):
         expect_args(args, 0)
         return self.amplitude_unit
 
-    def _set_offset(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        self.set_offset(parse_number(expect_args(args, 1)[0]))
-
-    def _get_offset(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return format_number(self.bench.generator.offset_v)
-
-    def _set_output(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        self.set_output(parse_bool(expect_args(args, 1)[0]))
-
-    def _get_output(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return "1" if self.bench.generator.output_on else "0"
-
 
 class OutputTreeGenerator(SimulatedGenerator):
     """``generator-output-tree``: ``OUTP:CH1:FREQ``, ``OUTP:CH1:AMPL``, ``OUTP:CH1:ENAB``..."""
@@ -180,55 +195,13 @@ class OutputTreeGenerator(SimulatedGenerator):
     min_amplitude_vpp = 2e-3
     max_amplitude_vpp = 20.0
     max_peak_v = 10.0
+    sine_word = "SINE"
+    sine_reply = "SINE"
 
     def define(self, tree: CommandTree) -> None:
-        tree.add("OUTPut:CHannel#:SHAPe", command=self._set_shape, query=self._get_shape)
-        tree.add("OUTPut:CHannel#:FREQuency", command=self._set_freq, query=self._get_freq)
-        tree.add("OUTPut:CHannel#:AMPLitude", command=self._set_ampl, query=self._get_ampl)
-        tree.add("OUTPut:CHannel#:DCOFfset", command=self._set_dcof, query=self._get_dcof)
-        tree.add("OUTPut:CHannel#:ENABle", command=self._set_enab, query=self._get_enab)
-
-    def _set_shape(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        parse_choice(expect_args(args, 1)[0], {"SINE": "SINE"})
-
-    def _get_shape(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return "SINE"
-
-    def _set_freq(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        self.set_frequency(parse_number(expect_args(args, 1)[0]))
-
-    def _get_freq(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return format_number(self.bench.generator.frequency_hz)
-
-    def _set_ampl(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        self.set_amplitude(parse_number(expect_args(args, 1)[0]))
-
-    def _get_ampl(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return format_number(self.bench.generator.amplitude_vpp)
-
-    def _set_dcof(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        self.set_offset(parse_number(expect_args(args, 1)[0]))
-
-    def _get_dcof(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return format_number(self.bench.generator.offset_v)
-
-    def _set_enab(self, suffixes: tuple[int, ...], args: list[str]) -> None:
-        self._channel(suffixes)
-        self.set_output(parse_bool(expect_args(args, 1)[0]))
-
-    def _get_enab(self, suffixes: tuple[int, ...], args: list[str]) -> str:
-        self._channel(suffixes)
-        expect_args(args, 0)
-        return "1" if self.bench.generator.output_on else "0"
+        out = "OUTPut:CHannel#"
+        tree.add(f"{out}:SHAPe", command=self._set_shape, query=self._get_shape)
+        tree.add(f"{out}:FREQuency", command=self._set_frequency, query=self._get_frequency)
+        tree.add(f"{out}:AMPLitude", command=self._set_amplitude, query=self._get_amplitude)
+        tree.add(f"{out}:DCOFfset", command=self._set_offset, query=self._get_offset)
+        tree.add(f"{out}:ENABle", command=self._set_output, query=self._get_output)

@@ -73,6 +73,8 @@ class SimulatedScope(SimulatedInstrument):
     #: Largest |offset| at the probe tip for probe attenuation 1 (scaled by it).
     max_offset_v: ClassVar[float] = 50.0
     default_points: ClassVar[int] = 10_000
+    #: The header word naming a channel in this dialect's arguments (``CHANnel``, ``INPut``).
+    channel_word: ClassVar[str]
 
     def reset_state(self) -> None:
         for n in CHANNELS:
@@ -182,49 +184,34 @@ class SimulatedScope(SimulatedInstrument):
             raise CommandError(-230, "no complete acquisition")
         return self.record
 
+    def record_or_error(self) -> Record | None:
+        """The last complete record; else None with -230 queued (the empty-reply path)."""
+        try:
+            return self.finished_record()
+        except CommandError as failure:
+            self.errors.push(failure.code, failure.detail)
+            return None
 
-class BlockScope(SimulatedScope):
-    """``scope-block``: ``CHAN{n}:SCAL``, ``TIM:SRAT``, ``ACQ:SING``, ``WAV:DATA?``..."""
+    def shown_interval_s(self) -> float:
+        """Sample interval of the last complete record, else of the present settings."""
+        if self.record is not None and self.acquisition_done:
+            return 1.0 / self.record.sample_rate_hz
+        return 1.0 / self.sample_rate_hz
 
-    dialect = "scope-block"
-    error_query = "SYSTem:ERRor"
-    clock_hz = 1e9
-    min_points = 100
-    max_points = 4_000_000
-    min_scale_v_per_div = 1e-3
-    max_scale_v_per_div = 10.0
+    def adc_bits(self) -> int:
+        """The bench's ADC resolution in bits, 0 for an ideal converter."""
+        return int(getattr(getattr(self.bench, "impairments", None), "adc_bits", 0) or 0)
 
-    def reset_state(self) -> None:
-        super().reset_state()
-        self.waveform_channel = 1
-        self.big_endian = False
+    # -- handlers both dialects register (under their own headers) ----------------------
 
-    def define(self, tree: CommandTree) -> None:
-        chan = "CHANnel#"
-        tree.add(f"{chan}:SCALe", command=self._set_scale, query=self._get_scale)
-        tree.add(f"{chan}:OFFSet", command=self._set_offset, query=self._get_offset)
-        tree.add(f"{chan}:COUPling", command=self._set_coupling, query=self._get_coupling)
-        tree.add(f"{chan}:PROBe", command=self._set_probe, query=self._get_probe)
-        tree.add("TIMebase:POINts", command=self._set_points, query=self._get_points)
-        tree.add("TIMebase:SRATe", command=self._set_srate, query=self._get_srate)
-        tree.add("TRIGger:SOURce", command=self._set_trig_source, query=self._get_trig_source)
-        tree.add("TRIGger:LEVel", command=self._set_trig_level, query=self._get_trig_level)
-        tree.add("TRIGger:SLOPe", command=self._set_trig_slope, query=self._get_trig_slope)
-        tree.add("ACQuire:SINGle", command=self._single)
-        tree.add("ACQuire:STATe", query=self._get_state)
-        tree.add("WAVeform:SOURce", command=self._set_wav_source, query=self._get_wav_source)
-        tree.add("WAVeform:FORMat", command=self._set_format, query=self._get_format)
-        tree.add("WAVeform:ORDer", command=self._set_order, query=self._get_order)
-        tree.add("WAVeform:PREamble", query=self._get_preamble)
-        tree.add("WAVeform:DATA", query=self._get_data)
+    def parse_channel_word(self, word: str) -> int:
+        """A channel named as ``<channel_word><n>`` (``CHAN2``, ``INP1``)."""
+        return parse_suffixed_word(word, self.channel_word, 2)
 
-    # Channel settings.
-    def _set_scale(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.set_scale(self.channel_number(s), parse_number(expect_args(a, 1)[0]))
-
-    def _get_scale(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return format_number(self.bench.channels[self.channel_number(s)].scale_v_per_div)
+    def channel_reply(self, n: int) -> str:
+        """The short form of channel ``n``'s name (``CHAN1``, ``INP1``)."""
+        short = "".join(c for c in self.channel_word if c.isupper())
+        return f"{short}{n}"
 
     def _set_offset(self, s: tuple[int, ...], a: list[str]) -> None:
         self.set_offset(self.channel_number(s), parse_number(expect_args(a, 1)[0]))
@@ -247,7 +234,6 @@ class BlockScope(SimulatedScope):
         expect_args(a, 0)
         return format_number(self.bench.channels[self.channel_number(s)].probe_attenuation)
 
-    # Timebase and trigger.
     def _set_points(self, s: tuple[int, ...], a: list[str]) -> None:
         self.set_record_length(parse_integer(expect_args(a, 1)[0]))
 
@@ -255,19 +241,23 @@ class BlockScope(SimulatedScope):
         expect_args(a, 0)
         return str(self.record_length)
 
-    def _set_srate(self, s: tuple[int, ...], a: list[str]) -> None:
+    def _set_rate(self, s: tuple[int, ...], a: list[str]) -> None:
         self.set_sample_rate(parse_number(expect_args(a, 1)[0]))
 
-    def _get_srate(self, s: tuple[int, ...], a: list[str]) -> str:
+    def _get_rate(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
         return format_number(self.sample_rate_hz)
 
+    def _start(self, s: tuple[int, ...], a: list[str]) -> None:
+        expect_args(a, 0)
+        self.start_acquisition()
+
     def _set_trig_source(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.trigger_channel = parse_suffixed_word(expect_args(a, 1)[0], "CHANnel", 2)
+        self.trigger_channel = self.parse_channel_word(expect_args(a, 1)[0])
 
     def _get_trig_source(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
-        return f"CHAN{self.trigger_channel}"
+        return self.channel_reply(self.trigger_channel)
 
     def _set_trig_level(self, s: tuple[int, ...], a: list[str]) -> None:
         self.trigger_level_v = parse_number(expect_args(a, 1)[0])
@@ -283,21 +273,60 @@ class BlockScope(SimulatedScope):
         expect_args(a, 0)
         return self.trigger_slope
 
-    # Acquisition and waveform transfer.
-    def _single(self, s: tuple[int, ...], a: list[str]) -> None:
+
+class BlockScope(SimulatedScope):
+    """``scope-block``: ``CHAN{n}:SCAL``, ``TIM:SRAT``, ``ACQ:SING``, ``WAV:DATA?``..."""
+
+    dialect = "scope-block"
+    error_query = "SYSTem:ERRor"
+    clock_hz = 1e9
+    min_points = 100
+    max_points = 4_000_000
+    min_scale_v_per_div = 1e-3
+    max_scale_v_per_div = 10.0
+    channel_word = "CHANnel"
+
+    def reset_state(self) -> None:
+        super().reset_state()
+        self.waveform_channel = 1
+        self.big_endian = False
+
+    def define(self, tree: CommandTree) -> None:
+        chan = "CHANnel#"
+        tree.add(f"{chan}:SCALe", command=self._set_scale, query=self._get_scale)
+        tree.add(f"{chan}:OFFSet", command=self._set_offset, query=self._get_offset)
+        tree.add(f"{chan}:COUPling", command=self._set_coupling, query=self._get_coupling)
+        tree.add(f"{chan}:PROBe", command=self._set_probe, query=self._get_probe)
+        tree.add("TIMebase:POINts", command=self._set_points, query=self._get_points)
+        tree.add("TIMebase:SRATe", command=self._set_rate, query=self._get_rate)
+        tree.add("TRIGger:SOURce", command=self._set_trig_source, query=self._get_trig_source)
+        tree.add("TRIGger:LEVel", command=self._set_trig_level, query=self._get_trig_level)
+        tree.add("TRIGger:SLOPe", command=self._set_trig_slope, query=self._get_trig_slope)
+        tree.add("ACQuire:SINGle", command=self._start)
+        tree.add("ACQuire:STATe", query=self._get_state)
+        tree.add("WAVeform:SOURce", command=self._set_wav_source, query=self._get_wav_source)
+        tree.add("WAVeform:FORMat", command=self._set_format, query=self._get_format)
+        tree.add("WAVeform:ORDer", command=self._set_order, query=self._get_order)
+        tree.add("WAVeform:PREamble", query=self._get_preamble)
+        tree.add("WAVeform:DATA", query=self._get_data)
+
+    def _set_scale(self, s: tuple[int, ...], a: list[str]) -> None:
+        self.set_scale(self.channel_number(s), parse_number(expect_args(a, 1)[0]))
+
+    def _get_scale(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
-        self.start_acquisition()
+        return format_number(self.bench.channels[self.channel_number(s)].scale_v_per_div)
 
     def _get_state(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
         return "DONE" if self.acquisition_done else "BUSY"
 
     def _set_wav_source(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.waveform_channel = parse_suffixed_word(expect_args(a, 1)[0], "CHANnel", 2)
+        self.waveform_channel = self.parse_channel_word(expect_args(a, 1)[0])
 
     def _get_wav_source(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
-        return f"CHAN{self.waveform_channel}"
+        return self.channel_reply(self.waveform_channel)
 
     def _set_format(self, s: tuple[int, ...], a: list[str]) -> None:
         parse_choice(expect_args(a, 1)[0], {"INT16": "INT16"})
@@ -322,13 +351,12 @@ class BlockScope(SimulatedScope):
         expect_args(a, 0)
         n = self.waveform_channel
         if self.record is not None and self.acquisition_done:
-            rate_hz = self.record.sample_rate_hz
             points = len(self.record.volts[n])
             scale, offset = self.record.scale_v_per_div[n], self.record.offset_v[n]
         else:
-            rate_hz, points = self.sample_rate_hz, self.record_length
+            points = self.record_length
             scale, offset = self.bench.channels[n].scale_v_per_div, self.bench.channels[n].offset_v
-        fields = (points, 1.0 / rate_hz, 0.0, self.y_increment_v(scale), offset, 0)
+        fields = (points, self.shown_interval_s(), 0.0, self.y_increment_v(scale), offset, 0)
         return ",".join(format_number(f) for f in fields)
 
     def codes(self, record: Record, n: int) -> np.ndarray:
@@ -337,17 +365,15 @@ class BlockScope(SimulatedScope):
         codes = np.clip(np.rint((record.volts[n] - record.offset_v[n]) / y_inc), -32768, 32767)
         # The bench's top ADC level (screen top less one step) is where it clips: send
         # it as 32767, the code DIALECTS.md gives for clipping at the top.
-        bits = int(getattr(getattr(self.bench, "impairments", None), "adc_bits", 0) or 0)
+        bits = self.adc_bits()
         if 0 < bits < 16:
             codes = np.where(codes >= 32768 - 2 ** (16 - bits), 32767, codes)
         return codes.astype(np.int16)
 
     def _get_data(self, s: tuple[int, ...], a: list[str]) -> bytes:
         expect_args(a, 0)
-        try:
-            record = self.finished_record()
-        except CommandError as failure:
-            self.errors.push(failure.code, failure.detail)
+        record = self.record_or_error()
+        if record is None:
             return b"#10"
         dtype = ">i2" if self.big_endian else "<i2"
         return ieee_block(self.codes(record, self.waveform_channel).astype(dtype).tobytes())
@@ -363,20 +389,21 @@ class TextScope(SimulatedScope):
     max_points = 200_000
     min_scale_v_per_div = 2e-3
     max_scale_v_per_div = 5.0
+    channel_word = "INPut"
 
     def define(self, tree: CommandTree) -> None:
         inp = "INPut#"
         tree.add(f"{inp}:RANGe", command=self._set_range, query=self._get_range)
         tree.add(f"{inp}:OFFSet", command=self._set_offset, query=self._get_offset)
         tree.add(f"{inp}:COUPling", command=self._set_coupling, query=self._get_coupling)
-        tree.add(f"{inp}:ATTenuation", command=self._set_att, query=self._get_att)
-        tree.add("ACQuire:LENGth", command=self._set_length, query=self._get_length)
+        tree.add(f"{inp}:ATTenuation", command=self._set_probe, query=self._get_probe)
+        tree.add("ACQuire:LENGth", command=self._set_points, query=self._get_points)
         tree.add("ACQuire:RATE", command=self._set_rate, query=self._get_rate)
-        tree.add("ACQuire:ARM", command=self._arm)
+        tree.add("ACQuire:ARM", command=self._start)
         tree.add("ACQuire:DONE", query=self._get_done)
         tree.add("TRIGger:SRC", command=self._set_trig_source, query=self._get_trig_source)
         tree.add("TRIGger:THReshold", command=self._set_trig_level, query=self._get_trig_level)
-        tree.add("TRIGger:EDGE", command=self._set_trig_edge, query=self._get_trig_edge)
+        tree.add("TRIGger:EDGE", command=self._set_trig_slope, query=self._get_trig_slope)
         tree.add("TRACe", query=self._get_trace)
         tree.add("TRACe:XINCrement", query=self._get_xinc)
 
@@ -389,79 +416,17 @@ class TextScope(SimulatedScope):
         scale = self.bench.channels[self.channel_number(s)].scale_v_per_div
         return format_number(scale * SCREEN_DIVISIONS)
 
-    def _set_offset(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.set_offset(self.channel_number(s), parse_number(expect_args(a, 1)[0]))
-
-    def _get_offset(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return format_number(self.bench.channels[self.channel_number(s)].offset_v)
-
-    def _set_coupling(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.set_coupling(self.channel_number(s), expect_args(a, 1)[0])
-
-    def _get_coupling(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return self.bench.channels[self.channel_number(s)].coupling
-
-    def _set_att(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.set_attenuation(self.channel_number(s), parse_number(expect_args(a, 1)[0]))
-
-    def _get_att(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return format_number(self.bench.channels[self.channel_number(s)].probe_attenuation)
-
-    def _set_length(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.set_record_length(parse_integer(expect_args(a, 1)[0]))
-
-    def _get_length(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return str(self.record_length)
-
-    def _set_rate(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.set_sample_rate(parse_number(expect_args(a, 1)[0]))
-
-    def _get_rate(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return format_number(self.sample_rate_hz)
-
-    def _arm(self, s: tuple[int, ...], a: list[str]) -> None:
-        expect_args(a, 0)
-        self.start_acquisition()
-
     def _get_done(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
         return "1" if self.acquisition_done else "0"
 
-    def _set_trig_source(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.trigger_channel = parse_suffixed_word(expect_args(a, 1)[0], "INPut", 2)
-
-    def _get_trig_source(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return f"INP{self.trigger_channel}"
-
-    def _set_trig_level(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.trigger_level_v = parse_number(expect_args(a, 1)[0])
-
-    def _get_trig_level(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return format_number(self.trigger_level_v)
-
-    def _set_trig_edge(self, s: tuple[int, ...], a: list[str]) -> None:
-        self.trigger_slope = parse_choice(expect_args(a, 1)[0], {"RISE": "RISE", "FALL": "FALL"})
-
-    def _get_trig_edge(self, s: tuple[int, ...], a: list[str]) -> str:
-        expect_args(a, 0)
-        return self.trigger_slope
-
     def _get_trace(self, s: tuple[int, ...], a: list[str]) -> str:
-        n = parse_suffixed_word(expect_args(a, 1)[0], "INPut", 2)
-        try:
-            record = self.finished_record()
-        except CommandError as failure:
-            self.errors.push(failure.code, failure.detail)
+        n = self.parse_channel_word(expect_args(a, 1)[0])
+        record = self.record_or_error()
+        if record is None:
             return ""
         volts = record.volts[n]
-        bits = int(getattr(getattr(self.bench, "impairments", None), "adc_bits", 0) or 0)
+        bits = self.adc_bits()
         if bits > 0:
             # The bench's top ADC level is where it clips: report it as the screen top.
             scale, offset = record.scale_v_per_div[n], record.offset_v[n]
@@ -472,9 +437,7 @@ class TextScope(SimulatedScope):
 
     def _get_xinc(self, s: tuple[int, ...], a: list[str]) -> str:
         expect_args(a, 0)
-        if self.record is not None and self.acquisition_done:
-            return format_number(1.0 / self.record.sample_rate_hz)
-        return format_number(1.0 / self.sample_rate_hz)
+        return format_number(self.shown_interval_s())
 
 
 def ieee_block(data: bytes) -> bytes:
