@@ -19,6 +19,9 @@ open_sim
 start_inprocess_bench / inprocess_bench
     The same through :class:`mock_instruments.visa_backend.InProcessBench`
     (``.resources``, ``.instruments``, ``.bench``, ``.backend``, ``.resource_manager()``).
+scpi_recorder
+    A recording SCPI server on loopback TCP (``tests/scpi_recorder.py``): ``.resource``,
+    ``.identity``, ``.commands``, ``.state``, ``.errors``, ``.replies``, ``.reject``.
 fake_clock
     A settable clock for ``SimulatedBench(clock=...)``: ``fake_clock.advance(seconds)``.
 """
@@ -43,6 +46,7 @@ if TYPE_CHECKING:
     from mock_instruments.bench import Impairments, SimulatedBench
     from mock_instruments.server import BenchServer
     from mock_instruments.visa_backend import InProcessBench
+    from scpi_recorder import RecordingServer
 
 
 class FakeClock:
@@ -189,6 +193,15 @@ def start_inprocess_bench() -> Iterator[Callable[..., InProcessBench]]:
 def inprocess_bench(start_inprocess_bench: Callable[..., InProcessBench]) -> InProcessBench:
     """A default in-process simulated bench."""
     return start_inprocess_bench()
+
+
+@pytest.fixture
+def scpi_recorder(visa_rm: pyvisa.ResourceManager) -> Iterator[RecordingServer]:
+    """A recording SCPI server on loopback TCP (``tests/scpi_recorder.py``)."""
+    from scpi_recorder import serving
+
+    with serving() as server:
+        yield server
 
 
 def pytest_terminal_summary(terminalreporter: Any) -> None:

@@ -7,9 +7,6 @@ over a loopback socket.
 
 from __future__ import annotations
 
-import socketserver
-import threading
-
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -78,55 +75,18 @@ def test_encode_decode_round_trip(payload):
 
 
 # --------------------------------------------------------------- through pyvisa-py
-class _BlockServer(socketserver.ThreadingTCPServer):
-    daemon_threads = True
-    allow_reuse_address = True
-
-    def __init__(self) -> None:
-        self.replies: dict[str, bytes] = {}
-        super().__init__(("127.0.0.1", 0), _BlockHandler)
-
-
-class _BlockHandler(socketserver.StreamRequestHandler):
-    def handle(self) -> None:
-        try:
-            for raw in self.rfile:
-                line = raw.decode().strip()
-                if line == "*IDN?":
-                    reply = IDENTITY.encode() + b"\n"
-                else:
-                    reply = self.server.replies.get(line, b"ERR\n")
-                self.wfile.write(reply)  # one write per reply (no Nagle stall)
-        except (ConnectionResetError, BrokenPipeError):
-            pass
-
-
-@pytest.fixture(scope="session")
-def visa_rm():
-    import pyvisa
-    return pyvisa.ResourceManager("@py")
-
-
 @pytest.fixture
-def block_server(visa_rm):
-    server = _BlockServer()
-    thread = threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True)
-    thread.start()
-    yield server
-    server.shutdown()
-    server.server_close()
-    thread.join(timeout=5)
-
-
-def _resource(server) -> str:
-    return f"TCPIP0::127.0.0.1::{server.server_address[1]}::SOCKET"
+def block_server(scpi_recorder):
+    """The recording server of ``tests/scpi_recorder.py`` under this file's identity."""
+    scpi_recorder.identity = IDENTITY
+    return scpi_recorder
 
 
 @pytest.mark.parametrize(("raw", "data_type", "order", "expected"), HAND_BLOCKS)
 def test_read_block_over_loopback(block_server, raw, data_type, order, expected):
     block_server.replies["DATA?"] = raw
     block_server.replies["NEXT?"] = b"after\n"
-    with Session(_resource(block_server), timeout_s=2.0) as session:
+    with Session(block_server.resource, timeout_s=2.0) as session:
         samples = session.query_samples("DATA?", data_type, order)
         np.testing.assert_array_equal(samples, np.array(expected))
         # the stream stays in sync: the next reply is the next answer
@@ -139,7 +99,7 @@ def test_read_large_newline_heavy_block(block_server):
     block_server.replies["BIG?"] = encode_samples(codes, "int16", "big")
     odd = np.arange(-60, 61, dtype=np.int8)
     block_server.replies["ODD?"] = encode_samples(odd, "int8")
-    with Session(_resource(block_server), timeout_s=2.0) as session:
+    with Session(block_server.resource, timeout_s=2.0) as session:
         np.testing.assert_array_equal(session.query_samples("BIG?", "int16", "big"), codes)
         np.testing.assert_array_equal(session.query_samples("ODD?", "int8"), odd)
 
@@ -147,7 +107,7 @@ def test_read_large_newline_heavy_block(block_server):
 def test_read_block_refuses_indefinite_and_missing_terminator(block_server):
     block_server.replies["INDEF?"] = b"#0\x01\x02\n"
     block_server.replies["NOTERM?"] = b"#12abX"
-    with Session(_resource(block_server), timeout_s=1.0) as session:
+    with Session(block_server.resource, timeout_s=1.0) as session:
         with pytest.raises(BlockFormatError, match="indefinite-length"):
             session.query_block("INDEF?")
         with pytest.raises(BlockFormatError, match="expected"):

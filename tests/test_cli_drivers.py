@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import socket
-import socketserver
-import threading
 
 import pytest
 
@@ -94,41 +92,15 @@ def test_drivers_check_broken_file_names_line_and_field(tmp_path, capsys, old, n
 
 
 # ------------------------------------------------------------------- identify
-class _Idn(socketserver.ThreadingTCPServer):
-    daemon_threads = True
-    allow_reuse_address = True
-    identity = "loopwright,simulated scope (scope-text),SIM-cli,0.1"
-
-
-class _IdnHandler(socketserver.StreamRequestHandler):
-    def handle(self) -> None:
-        try:
-            for raw in self.rfile:
-                if raw.strip() == b"*IDN?":
-                    self.wfile.write(self.server.identity.encode() + b"\n")
-        except (ConnectionResetError, BrokenPipeError):
-            pass
-
-
-@pytest.fixture(scope="session")
-def visa_rm():
-    import pyvisa
-    return pyvisa.ResourceManager("@py")
-
-
 @pytest.fixture
-def idn_server(visa_rm):
-    server = _Idn(("127.0.0.1", 0), _IdnHandler)
-    thread = threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True)
-    thread.start()
-    yield server
-    server.shutdown()
-    server.server_close()
-    thread.join(timeout=5)
+def idn_server(scpi_recorder):
+    """The recording server of ``tests/scpi_recorder.py`` as a text-dialect scope."""
+    scpi_recorder.identity = "loopwright,simulated scope (scope-text),SIM-cli,0.1"
+    return scpi_recorder
 
 
 def test_identify_prints_identity_and_driver(idn_server, capsys):
-    resource = f"TCPIP0::127.0.0.1::{idn_server.server_address[1]}::SOCKET"
+    resource = idn_server.resource
     assert main(["identify", resource]) == 0
     out = capsys.readouterr().out
     assert f"identity  {idn_server.identity}" in out
@@ -137,7 +109,7 @@ def test_identify_prints_identity_and_driver(idn_server, capsys):
 
 def test_identify_unknown_instrument_exit_1(idn_server, capsys):
     idn_server.identity = "someone,box,1,1"
-    resource = f"TCPIP0::127.0.0.1::{idn_server.server_address[1]}::SOCKET"
+    resource = idn_server.resource
     assert main(["identify", resource]) == 1
     assert "none matches" in capsys.readouterr().out
 

@@ -3,16 +3,14 @@ drivers/DIALECTS.md), values refused before anything is sent, the Python escape 
 
 Real pyvisa-py sessions over loopback TCP to a small recording SCPI server: it stores
 ``HEADER value`` commands and answers ``HEADER?`` from them, keeps an error queue, and
-takes per-test canned replies.
+takes per-test canned replies (``tests/scpi_recorder.py``, fixture ``scpi_recorder``).
 """
 
 from __future__ import annotations
 
 import math
-import socketserver
 import sys
 import textwrap
-import threading
 
 import numpy as np
 import pytest
@@ -34,85 +32,6 @@ from loopwright.instruments import (
 )
 from loopwright.instruments.template_roles import format_number
 
-ERROR_QUERIES = {"SYST:ERR?", "SYST:ERR:NEXT?", ":SYST:ERR?"}
-
-
-class _Recorder(socketserver.ThreadingTCPServer):
-    daemon_threads = True
-    allow_reuse_address = True
-
-    def __init__(self) -> None:
-        self.identity = "loopwright,test instrument,SIM-0,0"
-        self.commands: list[str] = []
-        self.state: dict[str, str] = {}
-        self.errors: list[str] = []
-        self.replies: dict[str, object] = {}
-        self.reject: dict[str, str] = {}
-        super().__init__(("127.0.0.1", 0), _RecorderHandler)
-
-    @property
-    def resource(self) -> str:
-        return f"TCPIP0::127.0.0.1::{self.server_address[1]}::SOCKET"
-
-    def answer(self, line: str) -> bytes | None:
-        self.commands.append(line)
-        if line in self.replies:
-            reply = self.replies[line]
-            reply = reply() if callable(reply) else reply
-            return reply if isinstance(reply, bytes) else f"{reply}\n".encode()
-        if line == "*IDN?":
-            return f"{self.identity}\n".encode()
-        if line == "*OPC?":
-            return b"1\n"
-        if line in ERROR_QUERIES:
-            entry = self.errors.pop(0) if self.errors else '0,"No error"'
-            return f"{entry}\n".encode()
-        if line == "*CLS":
-            self.errors.clear()
-            return None
-        if line in self.reject:
-            self.errors.append(self.reject[line])
-            return None
-        if line.endswith("?"):
-            if line[:-1] in self.state:
-                return f"{self.state[line[:-1]]}\n".encode()
-            self.errors.append('-113,"Undefined header"')
-            return None
-        header, _, value = line.partition(" ")
-        self.state[header] = value
-        return None
-
-    def sent_since(self, mark: int) -> list[str]:
-        return self.commands[mark:]
-
-
-class _RecorderHandler(socketserver.StreamRequestHandler):
-    def handle(self) -> None:
-        try:
-            for raw in self.rfile:
-                reply = self.server.answer(raw.decode().strip())  # type: ignore[attr-defined]
-                if reply is not None:
-                    self.wfile.write(reply)  # one write per reply
-        except (ConnectionResetError, BrokenPipeError):
-            pass
-
-
-@pytest.fixture(scope="session")
-def visa_rm():
-    import pyvisa
-    return pyvisa.ResourceManager("@py")
-
-
-@pytest.fixture
-def recorder(visa_rm):
-    server = _Recorder()
-    thread = threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True)
-    thread.start()
-    yield server
-    server.shutdown()
-    server.server_close()
-    thread.join(timeout=5)
-
 
 def _simulated(role: str, dialect: str) -> str:
     # the identity form of drivers/DIALECTS.md, "Simulated identities"
@@ -120,53 +39,53 @@ def _simulated(role: str, dialect: str) -> str:
 
 
 # ------------------------------------------------------------------ generators
-def test_generator_source_tree_exact_commands(recorder):
-    recorder.identity = _simulated("generator", "generator-source-tree")
-    recorder.state["SOUR1:VOLT"] = "1"
-    gen = open_instrument(recorder.resource, "generator", timeout_s=2.0)
+def test_generator_source_tree_exact_commands(scpi_recorder):
+    scpi_recorder.identity = _simulated("generator", "generator-source-tree")
+    scpi_recorder.state["SOUR1:VOLT"] = "1"
+    gen = open_instrument(scpi_recorder.resource, "generator", timeout_s=2.0)
     assert isinstance(gen, Generator)
     assert gen.driver_name == "generator-source-tree"
-    assert gen.identity == recorder.identity
-    assert recorder.commands == ["*IDN?", "*CLS", "SOUR1:VOLT:UNIT VPP", "SYST:ERR?"]
-    mark = len(recorder.commands)
+    assert gen.identity == scpi_recorder.identity
+    assert scpi_recorder.commands == ["*IDN?", "*CLS", "SOUR1:VOLT:UNIT VPP", "SYST:ERR?"]
+    mark = len(scpi_recorder.commands)
     gen.set_sine(1000.0, 0.5, 0.25)
     # amplitude shrinks (1 -> 0.5): amplitude before offset
-    assert recorder.sent_since(mark) == [
+    assert scpi_recorder.sent_since(mark) == [
         "SOUR1:VOLT?", "SOUR1:FUNC SIN", "SOUR1:FREQ 1000", "SOUR1:VOLT 0.5",
         "SOUR1:VOLT:OFFS 0.25", "SYST:ERR?"]
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     gen.set_frequency(12345.678901)
     gen.set_frequency(1.5e7)
     gen.set_amplitude(0.002)
     gen.set_output(True)
-    assert recorder.sent_since(mark) == [
+    assert scpi_recorder.sent_since(mark) == [
         "SOUR1:FREQ 12345.6789", "SYST:ERR?", "SOUR1:FREQ 15000000", "SYST:ERR?",
         "SOUR1:VOLT 0.002", "SYST:ERR?", "OUTP1 ON", "SYST:ERR?"]
     settings = gen.read_settings()
     assert settings.frequency_hz == 1.5e7 and settings.amplitude_vpp == 0.002
     assert settings.offset_v == 0.25 and settings.output_on is True
     assert gen.max_frequency_hz == 20e6 and gen.max_amplitude_vpp == 10.0
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     gen.close()
-    assert recorder.sent_since(mark) == ["OUTP1 OFF", "SYST:ERR?"]
+    assert scpi_recorder.sent_since(mark) == ["OUTP1 OFF", "SYST:ERR?"]
 
 
-def test_generator_output_tree_exact_commands(recorder):
-    recorder.identity = _simulated("generator", "generator-output-tree")
-    recorder.state["OUTP:CH1:AMPL"] = "0.1"
-    gen = open_instrument(recorder.resource, "generator", timeout_s=2.0)
+def test_generator_output_tree_exact_commands(scpi_recorder):
+    scpi_recorder.identity = _simulated("generator", "generator-output-tree")
+    scpi_recorder.state["OUTP:CH1:AMPL"] = "0.1"
+    gen = open_instrument(scpi_recorder.resource, "generator", timeout_s=2.0)
     assert gen.driver_name == "generator-output-tree"
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     gen.set_sine(250e3, 4.0, -1.5)
     # amplitude grows (0.1 -> 4): offset before amplitude
-    assert recorder.sent_since(mark) == [
+    assert scpi_recorder.sent_since(mark) == [
         "OUTP:CH1:AMPL?", "OUTP:CH1:SHAP SINE", "OUTP:CH1:FREQ 250000",
         "OUTP:CH1:DCOF -1.5", "OUTP:CH1:AMPL 4", "SYST:ERR:NEXT?"]
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     gen.set_output(True)
     assert gen.read_settings().output_on is True
     gen.set_output(False)
-    assert recorder.sent_since(mark) == [
+    assert scpi_recorder.sent_since(mark) == [
         "OUTP:CH1:ENAB 1", "SYST:ERR:NEXT?", "OUTP:CH1:FREQ?", "OUTP:CH1:AMPL?",
         "OUTP:CH1:DCOF?", "OUTP:CH1:ENAB?", "OUTP:CH1:ENAB 0", "SYST:ERR:NEXT?"]
     gen.close()
@@ -193,33 +112,33 @@ BAD_GENERATOR_CALLS = [
 
 
 @pytest.mark.parametrize(("method", "args"), BAD_GENERATOR_CALLS)
-def test_generator_refuses_before_sending(recorder, method, args):
-    recorder.identity = _simulated("generator", "generator-source-tree")
-    recorder.state["SOUR1:VOLT"] = "1"
-    with open_instrument(recorder.resource, "generator", timeout_s=2.0) as gen:
-        mark = len(recorder.commands)
+def test_generator_refuses_before_sending(scpi_recorder, method, args):
+    scpi_recorder.identity = _simulated("generator", "generator-source-tree")
+    scpi_recorder.state["SOUR1:VOLT"] = "1"
+    with open_instrument(scpi_recorder.resource, "generator", timeout_s=2.0) as gen:
+        mark = len(scpi_recorder.commands)
         with pytest.raises(DriverError):
             getattr(gen, method)(*args)
-        assert recorder.sent_since(mark) == []
+        assert scpi_recorder.sent_since(mark) == []
 
 
-def test_bench_caps_raise_safety_error_before_sending(recorder):
-    recorder.identity = _simulated("generator", "generator-source-tree")
+def test_bench_caps_raise_safety_error_before_sending(scpi_recorder):
+    scpi_recorder.identity = _simulated("generator", "generator-source-tree")
     caps = GeneratorCaps(max_amplitude_vpp=1.0, max_frequency_hz=1e5, max_peak_v=1.0)
-    with open_instrument(recorder.resource, "generator", timeout_s=2.0, caps=caps) as gen:
+    with open_instrument(scpi_recorder.resource, "generator", timeout_s=2.0, caps=caps) as gen:
         assert gen.max_amplitude_vpp == 1.0 and gen.max_frequency_hz == 1e5
-        mark = len(recorder.commands)
+        mark = len(scpi_recorder.commands)
         for call in (lambda: gen.set_amplitude(1.5), lambda: gen.set_frequency(2e5),
                      lambda: gen.set_sine(1e3, 1.0, 0.6)):
             with pytest.raises(SafetyError):
                 call()
-        assert recorder.sent_since(mark) == []
+        assert scpi_recorder.sent_since(mark) == []
 
 
-def test_instrument_error_queue_raises_scpi_error(recorder):
-    recorder.identity = _simulated("generator", "generator-source-tree")
-    recorder.reject["SOUR1:FREQ 1000"] = '-222,"Data out of range"'
-    with open_instrument(recorder.resource, "generator", timeout_s=2.0) as gen:
+def test_instrument_error_queue_raises_scpi_error(scpi_recorder):
+    scpi_recorder.identity = _simulated("generator", "generator-source-tree")
+    scpi_recorder.reject["SOUR1:FREQ 1000"] = '-222,"Data out of range"'
+    with open_instrument(scpi_recorder.resource, "generator", timeout_s=2.0) as gen:
         with pytest.raises(SCPIError) as info:
             gen.set_frequency(1000.0)
         assert info.value.code == -222 and info.value.text == "Data out of range"
@@ -227,19 +146,19 @@ def test_instrument_error_queue_raises_scpi_error(recorder):
 
 
 # ---------------------------------------------------------------------- scopes
-def test_scope_block_exact_commands_and_volts(recorder):
-    recorder.identity = _simulated("scope", "scope-block")
+def test_scope_block_exact_commands_and_volts(scpi_recorder):
+    scpi_recorder.identity = _simulated("scope", "scope-block")
     codes = {1: np.array([0, 1000, -1000, 32766, 5], dtype=np.int16),
              2: np.array([0, 32767, -3, 4, 0x0A0A], dtype=np.int16)}
-    recorder.replies["WAV:PRE?"] = "5,1e-06,0,0.001,0.5,0"
-    recorder.replies["WAV:DATA?"] = lambda: encode_samples(
-        codes[int(recorder.state["WAV:SOUR"][-1])], "int16", "little")
-    recorder.replies["TIM:SRAT?"] = "1000000"
-    scope = open_instrument(recorder.resource, "scope", timeout_s=2.0)
+    scpi_recorder.replies["WAV:PRE?"] = "5,1e-06,0,0.001,0.5,0"
+    scpi_recorder.replies["WAV:DATA?"] = lambda: encode_samples(
+        codes[int(scpi_recorder.state["WAV:SOUR"][-1])], "int16", "little")
+    scpi_recorder.replies["TIM:SRAT?"] = "1000000"
+    scope = open_instrument(scpi_recorder.resource, "scope", timeout_s=2.0)
     assert isinstance(scope, Scope) and scope.driver_name == "scope-block"
-    assert recorder.commands == ["*IDN?", "*CLS", "WAV:FORM INT16", "WAV:ORD LSBF",
+    assert scpi_recorder.commands == ["*IDN?", "*CLS", "WAV:FORM INT16", "WAV:ORD LSBF",
                                  "SYST:ERR?"]
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     wide = ChannelSettings(scale_v_per_div=10.0, offset_v=0.0, coupling="DC")
     scope.set_channel(1, ChannelSettings(0.5, 0.1, "AC", 10.0))
     scope.set_channel(1, wide)
@@ -247,7 +166,7 @@ def test_scope_block_exact_commands_and_volts(recorder):
     assert scope.set_timebase(1000, 1.2e6) == 1e6
     scope.set_trigger(1, -0.25, "fall")
     capture = scope.acquire(np.array([1, 2]))  # any sequence of channel numbers
-    assert recorder.sent_since(mark) == [
+    assert scpi_recorder.sent_since(mark) == [
         "CHAN1:PROB 10", "CHAN1:SCAL 0.5", "CHAN1:OFFS 0.1", "CHAN1:COUP AC", "SYST:ERR?",
         "CHAN1:PROB 1", "CHAN1:SCAL 10", "CHAN1:OFFS 0", "CHAN1:COUP DC", "SYST:ERR?",
         "CHAN2:PROB 1", "CHAN2:SCAL 10", "CHAN2:OFFS 0", "CHAN2:COUP DC", "SYST:ERR?",
@@ -266,22 +185,22 @@ def test_scope_block_exact_commands_and_volts(recorder):
     scope.close()
 
 
-def test_scope_text_exact_commands_and_polling(recorder):
-    recorder.identity = _simulated("scope", "scope-text")
+def test_scope_text_exact_commands_and_polling(scpi_recorder):
+    scpi_recorder.identity = _simulated("scope", "scope-text")
     done = iter(["0", "0", "1"])
-    recorder.replies[":ACQ:DONE?"] = lambda: next(done)
-    recorder.replies[":TRAC? INP1"] = "1.0000000e-01,-2.0000000e-01,3.0000000e-01"
-    recorder.replies[":TRAC? INP2"] = "0.0000000e+00,5.0000000e-01,-5.0000000e-01"
-    recorder.replies[":TRAC:XINC?"] = "2e-09"
-    recorder.replies[":ACQ:RATE?"] = "500000000"
-    scope = open_instrument(recorder.resource, "scope", timeout_s=2.0)
+    scpi_recorder.replies[":ACQ:DONE?"] = lambda: next(done)
+    scpi_recorder.replies[":TRAC? INP1"] = "1.0000000e-01,-2.0000000e-01,3.0000000e-01"
+    scpi_recorder.replies[":TRAC? INP2"] = "0.0000000e+00,5.0000000e-01,-5.0000000e-01"
+    scpi_recorder.replies[":TRAC:XINC?"] = "2e-09"
+    scpi_recorder.replies[":ACQ:RATE?"] = "500000000"
+    scope = open_instrument(scpi_recorder.resource, "scope", timeout_s=2.0)
     assert scope.driver_name == "scope-text"
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     scope.set_channel(2, ChannelSettings(0.25, -1.0, "DC", 10.0))
     assert scope.set_timebase(200, 4e8) == 5e8
     scope.set_trigger(2, 0.0, "rise")
     capture = scope.acquire([1, 2])
-    assert recorder.sent_since(mark) == [
+    assert scpi_recorder.sent_since(mark) == [
         ":INP2:ATT 10", ":INP2:RANG 2", ":INP2:OFFS -1", ":INP2:COUP DC", ":SYST:ERR?",
         ":ACQ:LENG 200", ":ACQ:RATE 400000000", ":SYST:ERR?", ":ACQ:RATE?",
         ":TRIG:SRC INP2", ":TRIG:THR 0", ":TRIG:EDGE RISE", ":SYST:ERR?",
@@ -293,18 +212,18 @@ def test_scope_text_exact_commands_and_polling(recorder):
     scope.close()
 
 
-def test_scope_limits_scale_with_probe_ratio(recorder):
+def test_scope_limits_scale_with_probe_ratio(scpi_recorder):
     # scale and offset are at the probe tip; their limits hold at the input (DIALECTS.md)
-    recorder.identity = _simulated("scope", "scope-block")
-    with open_instrument(recorder.resource, "scope", timeout_s=2.0) as scope:
-        mark = len(recorder.commands)
+    scpi_recorder.identity = _simulated("scope", "scope-block")
+    with open_instrument(scpi_recorder.resource, "scope", timeout_s=2.0) as scope:
+        mark = len(scpi_recorder.commands)
         scope.set_channel(1, ChannelSettings(50.0, -300.0, "DC", 10.0))
-        assert recorder.sent_since(mark)[:3] == ["CHAN1:PROB 10", "CHAN1:SCAL 50",
+        assert scpi_recorder.sent_since(mark)[:3] == ["CHAN1:PROB 10", "CHAN1:SCAL 50",
                                                  "CHAN1:OFFS -300"]
-        mark = len(recorder.commands)
+        mark = len(scpi_recorder.commands)
         with pytest.raises(DriverError, match="above the limit 100"):
             scope.set_channel(1, ChannelSettings(101.0, 0.0, "DC", 10.0))
-        assert recorder.sent_since(mark) == []
+        assert scpi_recorder.sent_since(mark) == []
 
 
 BAD_SCOPE_CALLS = [
@@ -334,26 +253,26 @@ BAD_SCOPE_CALLS = [
 
 
 @pytest.mark.parametrize(("method", "args"), BAD_SCOPE_CALLS)
-def test_scope_refuses_before_sending(recorder, method, args):
-    recorder.identity = _simulated("scope", "scope-block")
-    with open_instrument(recorder.resource, "scope", timeout_s=2.0) as scope:
-        mark = len(recorder.commands)
+def test_scope_refuses_before_sending(scpi_recorder, method, args):
+    scpi_recorder.identity = _simulated("scope", "scope-block")
+    with open_instrument(scpi_recorder.resource, "scope", timeout_s=2.0) as scope:
+        mark = len(scpi_recorder.commands)
         with pytest.raises(DriverError):
             getattr(scope, method)(*args)
-        assert recorder.sent_since(mark) == []
+        assert scpi_recorder.sent_since(mark) == []
 
 
 # ---------------------------------------------------------------------- switch
-def test_switch_relay_exact_commands(recorder):
-    recorder.identity = _simulated("switch", "switch-relay")
-    recorder.replies["ROUT:STAT? 1"] = "1"
-    switch = open_instrument(recorder.resource, "switch", timeout_s=2.0)
+def test_switch_relay_exact_commands(scpi_recorder):
+    scpi_recorder.identity = _simulated("switch", "switch-relay")
+    scpi_recorder.replies["ROUT:STAT? 1"] = "1"
+    switch = open_instrument(scpi_recorder.resource, "switch", timeout_s=2.0)
     assert isinstance(switch, LoopSwitch) and switch.driver_name == "switch-relay"
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     switch.set_closed(True)
     assert switch.read_closed() is True
     switch.close()
-    assert recorder.sent_since(mark) == ["ROUT:CLOS 1", "SYST:ERR?", "ROUT:STAT? 1",
+    assert scpi_recorder.sent_since(mark) == ["ROUT:CLOS 1", "SYST:ERR?", "ROUT:STAT? 1",
                                          "ROUT:OPEN 1", "SYST:ERR?",
                                          "ROUT:OPEN 2", "SYST:ERR?"]
     with pytest.raises(DriverError):
@@ -361,15 +280,15 @@ def test_switch_relay_exact_commands(recorder):
 
 
 # ---------------------------------------------------------------- selection
-def test_driver_by_name_and_no_match(recorder):
-    recorder.identity = "someone,unknown box,1,1"
+def test_driver_by_name_and_no_match(scpi_recorder):
+    scpi_recorder.identity = "someone,unknown box,1,1"
     with pytest.raises(DriverError, match="no generator driver matches"):
-        open_instrument(recorder.resource, "generator", timeout_s=2.0)
-    with open_instrument(recorder.resource, "generator", driver="generator-output-tree",
+        open_instrument(scpi_recorder.resource, "generator", timeout_s=2.0)
+    with open_instrument(scpi_recorder.resource, "generator", driver="generator-output-tree",
                          timeout_s=2.0) as gen:
         assert gen.driver_name == "generator-output-tree"
     with pytest.raises(DriverError, match="is a scope driver"):
-        open_instrument(recorder.resource, "generator", driver="scope-text", timeout_s=2.0)
+        open_instrument(scpi_recorder.resource, "generator", driver="scope-text", timeout_s=2.0)
 
 
 def test_user_folders_from_option_and_environment(tmp_path, monkeypatch):
@@ -412,15 +331,15 @@ def _python_driver(tmp_path, python: str) -> str:
     return str(path)
 
 
-def test_python_driver_registered_by_decorator(recorder, tmp_path):
-    recorder.identity = "loopwright,odd,0,0"
-    gen = open_instrument(recorder.resource, "generator",
+def test_python_driver_registered_by_decorator(scpi_recorder, tmp_path):
+    scpi_recorder.identity = "loopwright,odd,0,0"
+    gen = open_instrument(scpi_recorder.resource, "generator",
                           driver=_python_driver(tmp_path, "test-odd-generator"),
                           timeout_s=2.0)
     assert type(gen) is OddGenerator
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     gen.set_frequency(1500.0)
-    assert recorder.sent_since(mark) == ["FREQ 1.5KHZ", "SYST:ERR?"]
+    assert scpi_recorder.sent_since(mark) == ["FREQ 1.5KHZ", "SYST:ERR?"]
     with pytest.raises(DriverError):
         gen.set_frequency(2e6)
     with pytest.raises(DriverError, match="no 'commands' templates"):
@@ -428,19 +347,19 @@ def test_python_driver_registered_by_decorator(recorder, tmp_path):
     gen.session.close()
 
 
-def test_python_driver_module_class(recorder, tmp_path, monkeypatch):
+def test_python_driver_module_class(scpi_recorder, tmp_path, monkeypatch):
     (tmp_path / "odd_module.py").write_text(
         "from loopwright.instruments import TemplateGenerator\n"
         "class Gen(TemplateGenerator):\n"
         "    def set_output(self, on):\n"
         "        self.send(['ENABLE' if on else 'DISABLE'], 'set_output')\n")
     monkeypatch.syspath_prepend(str(tmp_path))
-    recorder.identity = "loopwright,odd,0,0"
-    gen = open_instrument(recorder.resource, "generator",
+    scpi_recorder.identity = "loopwright,odd,0,0"
+    gen = open_instrument(scpi_recorder.resource, "generator",
                           driver=_python_driver(tmp_path, "odd_module:Gen"), timeout_s=2.0)
-    mark = len(recorder.commands)
+    mark = len(scpi_recorder.commands)
     gen.set_output(True)
-    assert recorder.sent_since(mark) == ["ENABLE", "SYST:ERR?"]
+    assert scpi_recorder.sent_since(mark) == ["ENABLE", "SYST:ERR?"]
     gen.session.close()
     sys.modules.pop("odd_module", None)
 
@@ -496,8 +415,8 @@ def test_number_placeholder_without_limits_refused_with_line(tmp_path):
     assert (info.value.line, info.value.field) == (expected_line, "commands.set_channel[1]")
 
 
-def test_init_error_closes_session_and_raises(recorder):
-    recorder.identity = _simulated("generator", "generator-source-tree")
-    recorder.reject["SOUR1:VOLT:UNIT VPP"] = '-113,"Undefined header"'
+def test_init_error_closes_session_and_raises(scpi_recorder):
+    scpi_recorder.identity = _simulated("generator", "generator-source-tree")
+    scpi_recorder.reject["SOUR1:VOLT:UNIT VPP"] = '-113,"Undefined header"'
     with pytest.raises(SCPIError, match="Undefined header"):
-        open_instrument(recorder.resource, "generator", timeout_s=2.0)
+        open_instrument(scpi_recorder.resource, "generator", timeout_s=2.0)

@@ -7,8 +7,6 @@ from __future__ import annotations
 
 import io
 import socket
-import socketserver
-import threading
 import time
 
 import pytest
@@ -16,79 +14,36 @@ import pytest
 from loopwright.errors import ConnectionLost, InstrumentError, InstrumentTimeout, SCPIError
 from loopwright.instruments.block import encode_block
 from loopwright.instruments.session import Session, parse_error_reply
+from scpi_recorder import DROP
 
 IDENTITY = "loopwright,session test,SIM-0,1.0"
 
 
-class _Server(socketserver.ThreadingTCPServer):
-    daemon_threads = True
-    allow_reuse_address = True
-
-    def __init__(self) -> None:
-        self.commands: list[str] = []
-        self.errors: list[str] = []
-        super().__init__(("127.0.0.1", 0), _Handler)
-
-
-class _Handler(socketserver.StreamRequestHandler):
-    def handle(self) -> None:
-        server: _Server = self.server  # type: ignore[assignment]
-        try:
-            for raw in self.rfile:
-                line = raw.decode().strip()
-                server.commands.append(line)
-                if line == "*IDN?":
-                    reply = IDENTITY
-                elif line == "*OPC?":
-                    reply = "1"
-                elif line == "SYST:ERR?":
-                    reply = server.errors.pop(0) if server.errors else '0,"No error"'
-                elif line == "SLOW?":
-                    time.sleep(0.4)
-                    reply = "late"
-                elif line == "FAST?":
-                    reply = "fast"
-                elif line == "GARBLE?":
-                    self.wfile.write(b"\xff\xfe\x80\n")
-                    continue
-                elif line == "BAD":
-                    server.errors += ['-113,"Undefined header"', '-222,"Data out of range"']
-                    continue
-                elif line == "DROP?":
-                    return  # close the connection without a reply
-                elif line == "BLK?":
-                    self.wfile.write(encode_block(b"\x0a\x01\x0a"))
-                    continue
-                else:
-                    continue
-                self.wfile.write(reply.encode() + b"\n")  # one write per reply
-        except (ConnectionResetError, BrokenPipeError):
-            pass
-
-
-@pytest.fixture(scope="session")
-def visa_rm():
-    import pyvisa
-    return pyvisa.ResourceManager("@py")
-
-
 @pytest.fixture
-def server(visa_rm):
-    srv = _Server()
-    thread = threading.Thread(target=srv.serve_forever, args=(0.05,), daemon=True)
-    thread.start()
-    yield srv
-    srv.shutdown()
-    srv.server_close()
-    thread.join(timeout=5)
+def server(scpi_recorder):
+    """The recording server of ``tests/scpi_recorder.py`` with this file's canned replies."""
 
+    def slow() -> str:
+        time.sleep(0.4)
+        return "late"
 
-def _resource(srv: _Server) -> str:
-    return f"TCPIP0::127.0.0.1::{srv.server_address[1]}::SOCKET"
+    def bad() -> None:
+        scpi_recorder.errors.extend(['-113,"Undefined header"', '-222,"Data out of range"'])
+
+    scpi_recorder.identity = IDENTITY
+    scpi_recorder.replies.update({
+        "SLOW?": slow,
+        "FAST?": "fast",
+        "GARBLE?": b"\xff\xfe\x80\n",
+        "BAD": bad,
+        "DROP?": DROP,  # close the connection without a reply
+        "BLK?": encode_block(b"\x0a\x01\x0a"),
+    })
+    return scpi_recorder
 
 
 def test_open_asks_identity_and_sets_terminations(server):
-    with Session(_resource(server), timeout_s=2.0) as session:
+    with Session(server.resource, timeout_s=2.0) as session:
         assert session.identity == IDENTITY
         assert session.query("FAST?") == "fast"
         session.wait_complete()
@@ -108,7 +63,7 @@ def test_dead_port_fails_fast_with_connection_lost(visa_rm):
 
 
 def test_timeout_then_stale_reply_is_not_taken_for_next_answer(server):
-    with Session(_resource(server), timeout_s=0.15) as session:
+    with Session(server.resource, timeout_s=0.15) as session:
         with pytest.raises(InstrumentTimeout, match="SLOW") as info:
             session.query("SLOW?")
         assert info.value.__cause__ is not None  # raised from the VisaIOError
@@ -119,7 +74,7 @@ def test_timeout_then_stale_reply_is_not_taken_for_next_answer(server):
 
 
 def test_garbled_reply_is_our_error_and_stream_recovers(server):
-    with Session(_resource(server), timeout_s=2.0) as session:
+    with Session(server.resource, timeout_s=2.0) as session:
         with pytest.raises(InstrumentError, match="not text") as info:
             session.query("GARBLE?")
         assert isinstance(info.value.__cause__, UnicodeDecodeError)
@@ -127,7 +82,7 @@ def test_garbled_reply_is_our_error_and_stream_recovers(server):
 
 
 def test_error_queue_raised_with_code_and_text(server):
-    with Session(_resource(server), timeout_s=2.0, error_query="SYST:ERR?") as session:
+    with Session(server.resource, timeout_s=2.0, error_query="SYST:ERR?") as session:
         session.write("BAD")
         with pytest.raises(SCPIError) as info:
             session.check_errors(after="BAD")
@@ -145,7 +100,7 @@ def test_parse_error_reply_scpi_form():
 
 
 def test_reconnect_after_dropped_connection(server):
-    with Session(_resource(server), timeout_s=0.2) as session:
+    with Session(server.resource, timeout_s=0.2) as session:
         with pytest.raises((InstrumentTimeout, ConnectionLost)):
             session.query("DROP?")
         assert session.reconnect() == IDENTITY
@@ -154,12 +109,12 @@ def test_reconnect_after_dropped_connection(server):
 
 def test_traffic_log_lines(server):
     log = io.StringIO()
-    with Session(_resource(server), timeout_s=2.0, traffic_log=log) as session:
+    with Session(server.resource, timeout_s=2.0, traffic_log=log) as session:
         session.query("FAST?")
         assert session.query_block("BLK?") == b"\x0a\x01\x0a"
     lines = [line.split("\t") for line in log.getvalue().splitlines()]
     assert all(len(parts) == 4 for parts in lines)
-    assert all(parts[1] == _resource(server) for parts in lines)
+    assert all(parts[1] == server.resource for parts in lines)
     assert all(parts[0].endswith("+00:00") and "T" in parts[0] for parts in lines)
     exchanges = [(d, t) for _, _, d, t in lines if d != "note"]
     assert exchanges == [("write", "*IDN?"), ("read", IDENTITY), ("write", "FAST?"),
@@ -168,14 +123,14 @@ def test_traffic_log_lines(server):
 
 def test_traffic_log_to_path(server, tmp_path):
     path = tmp_path / "traffic.log"
-    with Session(_resource(server), timeout_s=2.0, traffic_log=path) as session:
+    with Session(server.resource, timeout_s=2.0, traffic_log=path) as session:
         session.query("FAST?")
     text = path.read_text()
     assert "\twrite\tFAST?\n" in text and "\tread\tfast\n" in text
 
 
 def test_closed_session_refuses(server):
-    session = Session(_resource(server), timeout_s=2.0)
+    session = Session(server.resource, timeout_s=2.0)
     session.close()
     with pytest.raises(ConnectionLost, match="closed"):
         session.query("FAST?")
