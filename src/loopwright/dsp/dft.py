@@ -14,11 +14,16 @@ import numpy as np
 from numpy.typing import NDArray
 
 from loopwright.dsp.estimate import register_estimator
-from loopwright.dsp.point import ChannelEstimate, PointEstimate, make_point, snr_db, wrap_phase_deg
-from loopwright.dsp.sinefit import harmonic_count
+from loopwright.dsp.point import (
+    ChannelEstimate,
+    PointEstimate,
+    channel_from_phasors,
+    make_point,
+    no_reference_error,
+)
+from loopwright.dsp.sinefit import stimulus_harmonics
 from loopwright.dsp.tonesums import data_sums
-from loopwright.dsp.windows import WINDOWS, make_window, spectral_noise_var
-from loopwright.errors import EstimationError
+from loopwright.dsp.windows import make_window, spectral_noise_var
 
 __all__ = ["estimate_dft", "windowed_channel"]
 
@@ -41,21 +46,11 @@ def windowed_channel(
     z = (y - offset) * window
     x, _ = data_sums(z, theta * np.arange(1, n_harm + 1))
     phasors = 2.0 * x / sw  # A exp(j phase) per harmonic
-    amps = np.abs(phasors)
     noise_var = spectral_noise_var(y, window_name, theta, n_harm)
     if not math.isfinite(noise_var):
-        noise_var = max(float(np.mean((y - offset) ** 2)) - float(np.sum(amps**2)) / 2.0, 0.0)
-    channel = ChannelEstimate(
-        amplitude_v=float(amps[0]),
-        phase_deg=wrap_phase_deg(math.degrees(float(np.angle(phasors[0])))),
-        offset_v=offset,
-        snr_db=snr_db(float(amps[0]), noise_var),
-        thd_pct=100.0 * float(np.sqrt(np.sum(amps[1:] ** 2))) / float(amps[0])
-        if amps[0] > 0
-        else math.nan,
-        noise_rms_v=math.sqrt(noise_var),
-    )
-    return channel, complex(phasors[0]), noise_var
+        noise_var = max(float(np.mean((y - offset) ** 2))
+                        - float(np.sum(np.abs(phasors) ** 2)) / 2.0, 0.0)
+    return channel_from_phasors(phasors, offset, noise_var), complex(phasors[0]), noise_var
 
 
 def phasor_log_var(noise_var: float, window: NDArray[np.float64], phasor: complex,
@@ -101,18 +96,13 @@ def estimate_dft(
     small for Hann and wider windows with a few cycles or more, large for the
     rectangular window with a non-integer number of cycles.
     """
-    if window not in WINDOWS:
-        raise EstimationError(f"unknown window {window!r}; choose one of: {', '.join(WINDOWS)}")
     n = reference_v.size
-    theta = 2 * math.pi * frequency_hz / sample_rate_hz
-    n_harm = harmonic_count(theta, n, harmonics)
     w = make_window(window, n)
+    theta, n_harm = stimulus_harmonics(frequency_hz, sample_rate_hz, n, harmonics)
     ref, x_ref, nv_ref = windowed_channel(reference_v, window, theta, n_harm)
     resp, x_resp, nv_resp = windowed_channel(response_v, window, theta, n_harm)
     if x_ref == 0:
-        raise EstimationError(
-            f"the reference has no component at {frequency_hz:g} Hz: check the stimulus"
-        )
+        raise no_reference_error(frequency_hz)
     var = phasor_log_var(nv_ref, w, x_ref) + phasor_log_var(nv_resp, w, x_resp)
     return make_point(frequency_hz, x_resp / x_ref, var, var, ref, resp, "dft",
                       {"window": window})

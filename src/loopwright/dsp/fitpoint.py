@@ -18,9 +18,15 @@ import numpy as np
 from numpy.typing import NDArray
 
 from loopwright.dsp.estimate import register_estimator
-from loopwright.dsp.point import ChannelEstimate, PointEstimate, make_point, snr_db, wrap_phase_deg
+from loopwright.dsp.point import (
+    ChannelEstimate,
+    PointEstimate,
+    make_point,
+    no_reference_error,
+    snr_db,
+    wrap_phase_deg,
+)
 from loopwright.dsp.sinefit import SineFit, fit_sine_3p, fit_sine_4p
-from loopwright.errors import EstimationError
 
 __all__ = ["channel_from_fit", "estimate_sinefit"]
 
@@ -76,9 +82,7 @@ def estimate_sinefit(
         ref_fit = fit_sine_3p(reference_v, sample_rate_hz, frequency_hz, harmonics)
     resp_fit = fit_sine_3p(response_v, sample_rate_hz, ref_fit.frequency_hz, harmonics)
     if float(ref_fit.amplitude_v) == 0.0:
-        raise EstimationError(
-            f"the reference has no component at {frequency_hz:g} Hz: check the stimulus"
-        )
+        raise no_reference_error(frequency_hz)
     gain = complex(resp_fit.phasor / ref_fit.phasor)
     vl_ref, vp_ref = ref_fit.log_amplitude_phase_var
     vl_resp, vp_resp = resp_fit.log_amplitude_phase_var

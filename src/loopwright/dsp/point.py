@@ -14,9 +14,11 @@ from loopwright.errors import EstimationError
 __all__ = [
     "ChannelEstimate",
     "PointEstimate",
+    "channel_from_phasors",
     "check_records",
     "db_std_from_log_var",
     "make_point",
+    "no_reference_error",
     "snr_db",
     "wrap_phase_deg",
 ]
@@ -141,6 +143,30 @@ def make_point(
         response=response,
         method=method,
         details=dict(details or {}),
+    )
+
+
+def channel_from_phasors(phasors: NDArray[np.complex128], offset_v: float,
+                         noise_var_v2: float) -> ChannelEstimate:
+    """Channel figures from its phasors ``A_k exp(j phase_k)`` at the fundamental and
+    harmonics (``phasors[0]`` the fundamental), its offset and noise variance."""
+    amps = np.abs(phasors)
+    return ChannelEstimate(
+        amplitude_v=float(amps[0]),
+        phase_deg=wrap_phase_deg(math.degrees(float(np.angle(phasors[0])))),
+        offset_v=offset_v,
+        snr_db=snr_db(float(amps[0]), noise_var_v2),
+        thd_pct=100.0 * float(np.sqrt(np.sum(amps[1:] ** 2))) / float(amps[0])
+        if amps[0] > 0
+        else math.nan,
+        noise_rms_v=math.sqrt(noise_var_v2),
+    )
+
+
+def no_reference_error(frequency_hz: float) -> EstimationError:
+    """The error of a reference channel with nothing at the stimulus frequency."""
+    return EstimationError(
+        f"the reference has no component at {frequency_hz:g} Hz: check the stimulus"
     )
 
 

@@ -26,7 +26,8 @@ from numpy.typing import NDArray
 from loopwright.dsp.tonesums import data_sums, tone_sums
 from loopwright.errors import EstimationError
 
-__all__ = ["SineFit", "fit_sine_3p", "fit_sine_4p", "harmonic_count", "seed_frequency"]
+__all__ = ["SineFit", "fit_sine_3p", "fit_sine_4p", "harmonic_count", "seed_frequency",
+           "stimulus_harmonics"]
 
 TWO_PI = 2.0 * np.pi
 
@@ -115,6 +116,14 @@ def harmonic_count(theta: float, n_samples: int, harmonics: int) -> int:
     # keep at least two samples per fitted parameter
     count = min(count, max(1, harmonics), max(1, (n_samples // 2 - 1) // 2))
     return max(count, 1)
+
+
+def stimulus_harmonics(frequency_hz: float, sample_rate_hz: float, n_samples: int,
+                       harmonics: int) -> tuple[float, int]:
+    """The stimulus in radians per sample and how many harmonics of it fit (see
+    :func:`harmonic_count`) in a record of ``n_samples``."""
+    theta = TWO_PI * frequency_hz / sample_rate_hz
+    return theta, harmonic_count(theta, n_samples, harmonics)
 
 
 def _trig_table(theta: float, n_samples: int, n_harm: int, max_power: int) -> NDArray:

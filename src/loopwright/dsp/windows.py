@@ -27,11 +27,16 @@ WINDOWS: dict[str, tuple[str, int]] = {
 }
 
 
-def make_window(name: str, n_samples: int) -> NDArray[np.float64]:
-    """The periodic window ``name`` of length ``n_samples`` (read-only, cached)."""
+def check_window(name: str) -> None:
+    """Refuse a window name not in :data:`WINDOWS` (an :class:`EstimationError`)."""
     if name not in WINDOWS:
         choices = ", ".join(WINDOWS)
         raise EstimationError(f"unknown window {name!r}; choose one of: {choices}")
+
+
+def make_window(name: str, n_samples: int) -> NDArray[np.float64]:
+    """The periodic window ``name`` of length ``n_samples`` (read-only, cached)."""
+    check_window(name)
     return _cached_window(name, int(n_samples))
 
 

@@ -22,10 +22,15 @@ from numpy.typing import NDArray
 
 from loopwright.dsp.dft import phasor_log_var
 from loopwright.dsp.estimate import register_estimator
-from loopwright.dsp.point import ChannelEstimate, PointEstimate, make_point, snr_db, wrap_phase_deg
-from loopwright.dsp.sinefit import harmonic_count
+from loopwright.dsp.point import (
+    PointEstimate,
+    channel_from_phasors,
+    make_point,
+    no_reference_error,
+)
+from loopwright.dsp.sinefit import stimulus_harmonics
 from loopwright.dsp.tonesums import data_sums
-from loopwright.dsp.windows import WINDOWS, make_window, spectral_noise_var
+from loopwright.dsp.windows import check_window, make_window, spectral_noise_var
 from loopwright.errors import EstimationError
 
 __all__ = ["estimate_xcorr"]
@@ -83,8 +88,7 @@ def estimate_xcorr(
     the coherent average of the segments aligned to t = 0 (meaningful for periodic
     stimuli); SNR and noise come from the periodogram of the whole record.
     """
-    if window not in WINDOWS:
-        raise EstimationError(f"unknown window {window!r}; choose one of: {', '.join(WINDOWS)}")
+    check_window(window)
     n = reference_v.size
     cycles = frequency_hz * n / sample_rate_hz
     # a segment needs MIN_SEGMENT_CYCLES cycles, MIN_SEGMENT_LEN samples, and the
@@ -102,8 +106,7 @@ def estimate_xcorr(
                 f"cycles and {min_len} samples here; use 1 to {max_seg} segments"
             )
     seg_len = n // n_seg
-    theta = 2 * math.pi * frequency_hz / sample_rate_hz
-    n_harm = harmonic_count(theta, seg_len, harmonics)
+    theta, n_harm = stimulus_harmonics(frequency_hz, sample_rate_hz, seg_len, harmonics)
     thetas = theta * np.arange(1, n_harm + 1)
     w = make_window(window, seg_len)
     sw = float(w.sum())
@@ -113,9 +116,7 @@ def estimate_xcorr(
     s_xx = float(np.mean(np.abs(xr[:, 0]) ** 2))
     s_yy = float(np.mean(np.abs(xs[:, 0]) ** 2))
     if s_xx == 0:
-        raise EstimationError(
-            f"the reference has no component at {frequency_hz:g} Hz: check the stimulus"
-        )
+        raise no_reference_error(frequency_hz)
     gain = s_xy / s_xx
     # align segment i (starting at sample i L) to t = 0, then average coherently
     starts = np.arange(n_seg)[:, None] * seg_len
@@ -131,18 +132,7 @@ def estimate_xcorr(
             nv = max(float(np.var(y)) - float(np.sum(amps**2)) / 2.0, 0.0)
         noise.append(nv)
         coherent.append(complex(phasors[0]) * sw / 2.0)
-        channels.append(
-            ChannelEstimate(
-                amplitude_v=float(amps[0]),
-                phase_deg=wrap_phase_deg(math.degrees(float(np.angle(phasors[0])))),
-                offset_v=off,
-                snr_db=snr_db(float(amps[0]), nv),
-                thd_pct=100.0 * float(np.sqrt(np.sum(amps[1:] ** 2))) / float(amps[0])
-                if amps[0] > 0
-                else math.nan,
-                noise_rms_v=math.sqrt(nv),
-            )
-        )
+        channels.append(channel_from_phasors(phasors, off, nv))
     if n_seg >= 4:
         coh2 = min(abs(s_xy) ** 2 / (s_xx * s_yy), 1.0) if s_yy > 0 else 0.0
         var = (1.0 - coh2) / (2.0 * n_seg * coh2) if coh2 > 0 else math.inf
