@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 
 from loopwright.store.names import safe_part
+from loopwright.store.writer import POINT_COLUMNS
 
 POLES_HZ = (1e3, 60e3, 300e3)
 LIMITS = (
@@ -32,14 +33,6 @@ LIMITS = (
     ("phase margin", "phase_margin_deg", 45.0, None, "deg"),
     ("gain margin", "gain_margin_db", 10.0, None, "dB"),
     ("crossover", "crossover_hz", 10e3, 40e3, "Hz"),
-)
-POINT_COLUMNS = (
-    "index", "timestamp_utc", "step", "frequency_hz", "amplitude_vpp", "gain_db",
-    "phase_deg", "gain_re", "gain_im", "gain_db_std", "phase_deg_std",
-    "reference_amplitude_v", "response_amplitude_v", "reference_snr_db",
-    "response_snr_db", "reference_thd_pct", "response_thd_pct",
-    "reference_scale_v_per_div", "response_scale_v_per_div", "sample_rate_hz",
-    "record_length", "averages", "refined", "flags",
 )
 
 
