@@ -22,6 +22,8 @@ start_inprocess_bench / inprocess_bench
 scpi_recorder
     A recording SCPI server on loopback TCP (``tests/scpi_recorder.py``): ``.resource``,
     ``.identity``, ``.commands``, ``.state``, ``.errors``, ``.replies``, ``.reject``.
+scaffold_files
+    ``(procedure, bench)``: two invented placeholder files in ``tmp_path``.
 fake_clock
     A settable clock for ``SimulatedBench(clock=...)``: ``fake_clock.advance(seconds)``.
 """
@@ -31,11 +33,14 @@ from __future__ import annotations
 import contextlib
 import os
 from collections.abc import Callable, Iterator
-from typing import TYPE_CHECKING, Any
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, TypeVar
 
 import pytest
 import pyvisa
 from hypothesis import settings
+
+from fake_clock import FakeClock
 
 # CI is reproducible: the same examples on every run (a fixed seed per test).
 settings.register_profile("ci", derandomize=True, print_blob=True)
@@ -49,18 +54,8 @@ if TYPE_CHECKING:
     from scpi_recorder import RecordingServer
 
 
-class FakeClock:
-    """A clock that moves only when told (seconds)."""
-
-    def __init__(self, start_s: float = 1000.0) -> None:
-        self.now_s = start_s
-
-    def __call__(self) -> float:
-        return self.now_s
-
-    def advance(self, seconds: float) -> None:
-        """Move the clock forward."""
-        self.now_s += seconds
+#: A served bench: a BenchServer or an InProcessBench (both have ``close()``).
+Handle = TypeVar("Handle")
 
 
 def make_bench(
@@ -94,6 +89,32 @@ def _dialects(generator: str, scope: str, switch: str | None) -> dict[str, str]:
     return dialects
 
 
+def _bench_factory(open_bench: Callable[..., Handle]) -> Iterator[Callable[..., Handle]]:
+    """Yield a factory of benches opened by ``open_bench(bench, dialects, realtime=...)``.
+
+    Every bench it opened is closed when the generator resumes (the fixture's teardown).
+    """
+    handles: list[Handle] = []
+
+    def start(
+        dut: str = "rational",
+        *,
+        generator: str = "generator-source-tree",
+        scope: str = "scope-block",
+        switch: str | None = "switch-relay",
+        realtime: bool = False,
+        **bench_options: Any,
+    ) -> Handle:
+        bench = make_bench(dut, **bench_options)
+        handle = open_bench(bench, _dialects(generator, scope, switch), realtime=realtime)
+        handles.append(handle)
+        return handle
+
+    yield start
+    for handle in handles:
+        handle.close()
+
+
 @pytest.fixture(scope="session")
 def visa_rm() -> Iterator[pyvisa.ResourceManager]:
     """The process-wide pyvisa-py resource manager."""
@@ -110,27 +131,9 @@ def fake_clock() -> FakeClock:
 @pytest.fixture
 def start_sim_bench() -> Iterator[Callable[..., BenchServer]]:
     """Factory serving simulated benches on loopback TCP; all closed at teardown."""
-    servers: list[BenchServer] = []
+    from mock_instruments.server import serve_bench
 
-    def start(
-        dut: str = "rational",
-        *,
-        generator: str = "generator-source-tree",
-        scope: str = "scope-block",
-        switch: str | None = "switch-relay",
-        realtime: bool = False,
-        **bench_options: Any,
-    ) -> BenchServer:
-        from mock_instruments.server import serve_bench
-
-        bench = make_bench(dut, **bench_options)
-        server = serve_bench(bench, _dialects(generator, scope, switch), realtime=realtime)
-        servers.append(server)
-        return server
-
-    yield start
-    for server in servers:
-        server.close()
+    yield from _bench_factory(serve_bench)
 
 
 @pytest.fixture
@@ -166,33 +169,25 @@ def open_sim(
 @pytest.fixture
 def start_inprocess_bench() -> Iterator[Callable[..., InProcessBench]]:
     """Factory of in-process simulated benches (pyvisa without sockets)."""
-    benches: list[InProcessBench] = []
+    from mock_instruments.visa_backend import InProcessBench
 
-    def start(
-        dut: str = "rational",
-        *,
-        generator: str = "generator-source-tree",
-        scope: str = "scope-block",
-        switch: str | None = "switch-relay",
-        realtime: bool = False,
-        **bench_options: Any,
-    ) -> InProcessBench:
-        from mock_instruments.visa_backend import InProcessBench
-
-        bench = make_bench(dut, **bench_options)
-        handle = InProcessBench(bench, _dialects(generator, scope, switch), realtime=realtime)
-        benches.append(handle)
-        return handle
-
-    yield start
-    for handle in benches:
-        handle.close()
+    yield from _bench_factory(InProcessBench)
 
 
 @pytest.fixture
 def inprocess_bench(start_inprocess_bench: Callable[..., InProcessBench]) -> InProcessBench:
     """A default in-process simulated bench."""
     return start_inprocess_bench()
+
+
+@pytest.fixture
+def scaffold_files(tmp_path: Path) -> tuple[Path, Path]:
+    """An invented procedure and bench file (placeholders the production tests pass on)."""
+    procedure = tmp_path / "procedure.yaml"
+    procedure.write_text("name: scaffold-loop\n# invented procedure for tests\n")
+    bench = tmp_path / "bench.yaml"
+    bench.write_text("# invented bench for tests\n")
+    return procedure, bench
 
 
 @pytest.fixture

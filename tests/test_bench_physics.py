@@ -10,25 +10,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from fake_clock import FakeClock
 from loopwright.errors import InputError
 from mock_instruments.bench import Impairments, SimulatedBench
 from mock_instruments.duts import load_dut
 from mock_instruments.signal_chain import quantisation_step_v
 
 IDEAL = Impairments(adc_bits=0)
-
-
-class FakeClock:
-    """A bench clock the test advances by hand."""
-
-    def __init__(self, t_s: float = 100.0) -> None:
-        self.t_s = t_s
-
-    def __call__(self) -> float:
-        return self.t_s
-
-    def advance(self, dt_s: float) -> None:
-        self.t_s += dt_s
 
 
 def fit_phasor(volts: np.ndarray, frequency_hz: float, sample_rate_hz: float,
@@ -58,7 +46,7 @@ def fit_frequency(volts: np.ndarray, guess_hz: float, sample_rate_hz: float) -> 
 
 
 def settled_bench(dut, frequency_hz, impairments=IDEAL, amplitude_vpp=0.2, seed=1, **gen):
-    clock = FakeClock()
+    clock = FakeClock(100.0)
     bench = SimulatedBench(dut, impairments, seed=seed, clock=clock)
     bench.apply_generator(frequency_hz=frequency_hz, amplitude_vpp=amplitude_vpp,
                           output_on=True, **gen)
@@ -145,12 +133,12 @@ class TestSettling:
         bench.channels[2].scale_v_per_div = 10.0
         f = 12e3
         bench.apply_generator(frequency_hz=f)
-        changed_at = clock.t_s
+        changed_at = clock.now_s
         exact = complex(dut.loop_response(f))
         errors = {}
         # The trigger waits for the next rising crossing, so waits are > 1 period apart.
         for wait_tau in (0, 3, 6, 10, 20):
-            clock.t_s = changed_at + wait_tau * tau
+            clock.now_s = changed_at + wait_tau * tau
             errors[wait_tau] = abs(measured_ratio(bench, f, cycles=2) / exact - 1)
         assert errors[0] > 0.1
         assert errors[0] > errors[3] > errors[6] > errors[10] > errors[20]
@@ -175,7 +163,7 @@ class TestSettling:
 
     def test_amplitude_change_and_output_on_start_transients(self):
         dut = load_dut("wien", output_limit_v=None)
-        clock = FakeClock()
+        clock = FakeClock(100.0)
         bench = SimulatedBench(dut, IDEAL, clock=clock)
         # Output off: no stimulus, nothing on either probe.
         rec = bench.acquire(256, 1e5)
@@ -228,7 +216,7 @@ class TestSoftNonlinearity:
 
 class TestImpairments:
     def test_noise_rms_per_channel(self):
-        clock = FakeClock()
+        clock = FakeClock(100.0)
         bench = SimulatedBench("wien", Impairments(noise_v_rms=(1e-3, 4e-3), adc_bits=0),
                                seed=3, clock=clock)
         rec = bench.acquire(200_000, 1e6)
@@ -323,7 +311,7 @@ class TestImpairments:
 
 
 def test_bad_arguments_raise_our_error():
-    bench = SimulatedBench("wien", IDEAL, clock=FakeClock())
+    bench = SimulatedBench("wien", IDEAL, clock=FakeClock(100.0))
     with pytest.raises(InputError):
         bench.apply_generator(frequency=5.0)
     with pytest.raises(InputError, match="only 'sine'"):
@@ -337,7 +325,7 @@ def test_bad_arguments_raise_our_error():
 def test_thread_safe_concurrent_use():
     import threading
 
-    clock = FakeClock()
+    clock = FakeClock(100.0)
     bench = SimulatedBench("wien", IDEAL, clock=clock)
     errors = []
 

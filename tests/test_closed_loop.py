@@ -14,24 +14,12 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
+from fake_clock import FakeClock
 from mock_instruments.bench import Impairments, SimulatedBench
 from mock_instruments.duts import load_dut
 
 IDEAL = Impairments(adc_bits=0)
 POINTS_PER_CYCLE = 40
-
-
-class FakeClock:
-    """A bench clock the test advances by hand."""
-
-    def __init__(self, t_s: float = 5000.0) -> None:
-        self.t_s = t_s
-
-    def __call__(self) -> float:
-        return self.t_s
-
-    def advance(self, dt_s: float) -> None:
-        self.t_s += dt_s
 
 
 def sine_fit(volts: np.ndarray, guess_hz: float, sample_rate_hz: float) -> tuple[float, float]:
@@ -57,7 +45,7 @@ def coarse_frequency(volts: np.ndarray, sample_rate_hz: float) -> float:
 
 def run_closed(dut, warm_cycles=300.0, seed=2):
     f0 = dut.resonance_hz()
-    clock = FakeClock()
+    clock = FakeClock(5000.0)
     bench = SimulatedBench(dut, IDEAL, seed=seed, clock=clock)
     bench.set_loop_closed(True)
     return bench, clock, f0
@@ -123,7 +111,7 @@ def test_more_gain_more_amplitude_and_distortion():
 
 def test_stable_loop_closed_decays():
     dut = load_dut("rational")          # H(0) = -5, a stable negative-feedback loop
-    clock = FakeClock()
+    clock = FakeClock(5000.0)
     bench = SimulatedBench(dut, IDEAL, seed=1, clock=clock)
     bench.set_loop_closed(True)
     first = np.max(np.abs(bench.acquire(200, 1e6)[2]))
@@ -155,7 +143,7 @@ def test_state_continues_between_records_and_long_gaps_stay_cheap():
 
 def test_reopening_the_loop_restores_the_open_loop_measurement():
     dut = load_dut("wien", output_limit_v=None)
-    clock = FakeClock()
+    clock = FakeClock(5000.0)
     bench = SimulatedBench(dut, IDEAL, seed=1, clock=clock)
     bench.apply_generator(frequency_hz=1e3, output_on=True)
     bench.set_loop_closed(True)
@@ -183,7 +171,7 @@ def test_integrator_agrees_with_scipy_dop853(name):
     net = system.network
     run_state = bench._closed_run
     x0, t0 = run_state.x.copy(), run_state.t_s
-    clock.t_s = t0
+    clock.now_s = t0
     fs = POINTS_PER_CYCLE * f0
     t = np.arange(40 * POINTS_PER_CYCLE) / fs
     solution = solve_ivp(lambda _t, x: net.A @ x + net.B * system.stage(net.C @ x),
@@ -201,7 +189,7 @@ def test_stable_linear_loops_close_exactly_and_settle(name):
     # Stable linear loops are solved with the closed loop's matrix exponential: the
     # start-up noise decays with the closed-loop poles, however stiff the loop is.
     dut = load_dut(name)
-    clock = FakeClock()
+    clock = FakeClock(5000.0)
     bench = SimulatedBench(dut, IDEAL, seed=4, clock=clock)
     bench.set_loop_closed(True)
     assert bench._closed_run.exact
@@ -241,9 +229,9 @@ def test_consecutive_records_continue_one_trajectory():
         bench.set_loop_closed(True)
         clock.advance(250 / f0)
         if split:
-            start = clock.t_s
+            start = clock.now_s
             joined.append(bench.acquire(n, fs)[2])
-            clock.t_s = start + n / fs
+            clock.now_s = start + n / fs
             joined.append(bench.acquire(n, fs)[2])
         else:
             whole = bench.acquire(2 * n, fs)[2]

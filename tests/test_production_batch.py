@@ -35,23 +35,14 @@ GAINS = {"LW-0001": 18.0, "LW-0002": 22.0, "LW-0003": 26.0, "LW-0004": 30.0, "LW
 SERIALS = ["LW-0001", "LW-0002\r", "  LW-0003", "LW-0004", "LW-0005", "LW-0002", "LW-0006"]
 
 
-@pytest.fixture
-def files(tmp_path: Path) -> tuple[Path, Path]:
-    procedure = tmp_path / "procedure.yaml"
-    procedure.write_text("name: scaffold-loop\n# invented procedure for tests\n")
-    bench = tmp_path / "bench.yaml"
-    bench.write_text("# invented bench for tests\n")
-    return procedure, bench
-
-
 def quiet_console() -> tuple[Console, io.StringIO]:
     buf = io.StringIO()
     return Console(file=buf, width=110, color_system=None), buf
 
 
-def drive(files, out: Path, lines: list[str], runner: AnalyticBoardRunner | None = None,
+def drive(scaffold_files, out: Path, lines: list[str], runner: AnalyticBoardRunner | None = None,
           index_url: str | None = None):
-    procedure, bench = files
+    procedure, bench = scaffold_files
     runner = runner or AnalyticBoardRunner(procedure, gains=GAINS)
     console, buf = quiet_console()
     summary = run_batch(
@@ -63,9 +54,9 @@ def drive(files, out: Path, lines: list[str], runner: AnalyticBoardRunner | None
 
 
 @pytest.fixture
-def batch(files, tmp_path: Path):
+def batch(scaffold_files, tmp_path: Path):
     out = tmp_path / "out"
-    summary, runner, text = drive(files, out, [*SERIALS, ""])
+    summary, runner, text = drive(scaffold_files, out, [*SERIALS, ""])
     return out, summary, runner, text
 
 
@@ -95,9 +86,9 @@ def test_batch_summary_and_operator_screen(batch) -> None:
     assert "████" in text and "crossover" in text and "RETEST" in text
 
 
-def test_index_rows_match_run_folders(batch, files) -> None:
+def test_index_rows_match_run_folders(batch, scaffold_files) -> None:
     out, _summary, _runner, _text = batch
-    _procedure, _bench = files
+    _procedure, _bench = scaffold_files
     with open_index(out, create=False) as index:
         runs = index.list_runs()
         assert len(runs) == len(SERIALS)
@@ -223,8 +214,8 @@ def test_index_cli_queries(batch, capsys) -> None:
     assert capsys.readouterr().out.count("already indexed") == len(folders)
 
 
-def test_index_add_marks_retests_and_reads_station(files, tmp_path: Path, capsys) -> None:
-    procedure, _bench = files
+def test_index_add_marks_retests_and_reads_station(scaffold_files, tmp_path: Path, capsys) -> None:
+    procedure, _bench = scaffold_files
     runner = AnalyticBoardRunner(procedure, station="bench-7")
     made = tmp_path / "made"
     first, _ = runner("X-1", retest=False, out_dir=made)
@@ -249,9 +240,9 @@ def test_index_add_marks_retests_and_reads_station(files, tmp_path: Path, capsys
         ("C:\\boards\\7", "C:\\boards\\7"),
     ],
 )
-def test_hostile_serials_stay_data(files, tmp_path: Path, typed: str, stored: str) -> None:
+def test_hostile_serials_stay_data(scaffold_files, tmp_path: Path, typed: str, stored: str) -> None:
     out = tmp_path / "out"
-    summary, _runner, _text = drive(files, out, [typed, ""])
+    summary, _runner, _text = drive(scaffold_files, out, [typed, ""])
     [board] = summary.boards
     assert board.serial == stored and board.verdict in ("pass", "fail")
     assert Path(board.run_dir).parent == out.resolve()
@@ -261,8 +252,8 @@ def test_hostile_serials_stay_data(files, tmp_path: Path, typed: str, stored: st
     assert run["serial"] == stored
 
 
-def test_end_of_input_interrupt_and_long_serial(files, tmp_path: Path) -> None:
-    summary, _r, _t = drive(files, tmp_path / "a", ["LW-1", "LW-2"])  # no empty line: EOF
+def test_end_of_input_interrupt_and_long_serial(scaffold_files, tmp_path: Path) -> None:
+    summary, _r, _t = drive(scaffold_files, tmp_path / "a", ["LW-1", "LW-2"])  # no empty line: EOF
     assert summary.ended_by == "end of input" and len(summary.boards) == 2
 
     class InterruptedStream(io.StringIO):
@@ -272,7 +263,7 @@ def test_end_of_input_interrupt_and_long_serial(files, tmp_path: Path) -> None:
                 raise KeyboardInterrupt
             return line
 
-    procedure, bench = files
+    procedure, bench = scaffold_files
     console, buf = quiet_console()
     summary = run_batch(
         procedure, bench, station="s", operator=None, out_dir=tmp_path / "b",
@@ -284,8 +275,8 @@ def test_end_of_input_interrupt_and_long_serial(files, tmp_path: Path) -> None:
     assert "at most 128" in buf.getvalue()
 
 
-def test_runner_errors_and_escapes_become_error_results(files, tmp_path: Path) -> None:
-    procedure, bench = files
+def test_runner_errors_and_escapes_become_error_results(scaffold_files, tmp_path: Path) -> None:
+    procedure, bench = scaffold_files
     good = AnalyticBoardRunner(procedure)
     outside = tmp_path / "elsewhere"
 
@@ -310,8 +301,8 @@ def test_runner_errors_and_escapes_become_error_results(files, tmp_path: Path) -
     assert frame["verdict"].tolist() == ["error", "error", "pass"]
 
 
-def test_missing_files_and_bad_index_are_our_errors(files, tmp_path: Path, capsys) -> None:
-    procedure, _bench = files
+def test_missing_files_and_bad_index_are_our_errors(scaffold_files, tmp_path: Path, capsys) -> None:
+    procedure, _bench = scaffold_files
     console, _ = quiet_console()
     with pytest.raises(InputError, match="bench file not found"):
         run_batch(procedure, tmp_path / "nope.yaml", station="s", operator=None,
@@ -333,8 +324,8 @@ def test_missing_files_and_bad_index_are_our_errors(files, tmp_path: Path, capsy
     assert "not a loopwright results index" in capsys.readouterr().err
 
 
-def test_malformed_summary_names_file_and_field(files, tmp_path: Path, capsys) -> None:
-    procedure, _bench = files
+def test_malformed_summary_names_file_and_field(scaffold_files, tmp_path: Path, capsys) -> None:
+    procedure, _bench = scaffold_files
     run_dir, _ = AnalyticBoardRunner(procedure)("Z-1", retest=False, out_dir=tmp_path / "r")
     summary = json.loads((run_dir / "summary.json").read_text())
     summary["limits"][1]["value"] = "high"
@@ -344,9 +335,9 @@ def test_malformed_summary_names_file_and_field(files, tmp_path: Path, capsys) -
     assert "summary.json" in err and "limits[1].value" in err
 
 
-def test_three_processes_share_one_sqlite_index(files, tmp_path: Path) -> None:
+def test_three_processes_share_one_sqlite_index(scaffold_files, tmp_path: Path) -> None:
     """Three stations append to one SQLite file at once: no row lost or duplicated."""
-    procedure, bench = files
+    procedure, bench = scaffold_files
     shared = tmp_path / "shared" / "index.sqlite"
     per_station = 6
     start_at = time.time() + 4.0  # after every spawned worker has imported

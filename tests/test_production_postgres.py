@@ -122,17 +122,8 @@ def _count(url: str, table: str) -> int:
         return conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0]
 
 
-@pytest.fixture
-def files(tmp_path: Path) -> tuple[Path, Path]:
-    procedure = tmp_path / "procedure.yaml"
-    procedure.write_text("name: scaffold-loop\n# invented procedure for tests\n")
-    bench = tmp_path / "bench.yaml"
-    bench.write_text("# invented bench for tests\n")
-    return procedure, bench
-
-
-def _batch(files, out: Path, index_url: str | None, serials: list[str]):
-    procedure, bench = files
+def _batch(scaffold_files, out: Path, index_url: str | None, serials: list[str]):
+    procedure, bench = scaffold_files
     runner = AnalyticBoardRunner(procedure, gains={"P-5": 55.0})
     return run_batch(
         procedure, bench, station="station-a", operator="tester", out_dir=out,
@@ -141,10 +132,12 @@ def _batch(files, out: Path, index_url: str | None, serials: list[str]):
     )
 
 
-def test_postgresql_holds_the_same_rows_as_sqlite(files, tmp_path: Path, pg_url: str) -> None:
+def test_postgresql_holds_the_same_rows_as_sqlite(
+    scaffold_files, tmp_path: Path, pg_url: str
+) -> None:
     serials = ["P-1", "P-2", "P-3", "P-4", "P-5", "P-2"]
-    _batch(files, tmp_path / "a", pg_url, serials)
-    _batch(files, tmp_path / "b", None, serials)
+    _batch(scaffold_files, tmp_path / "a", pg_url, serials)
+    _batch(scaffold_files, tmp_path / "b", None, serials)
     skip = {"run_id", "indexed_utc", "run_dir"}
     with open_index(pg_url, create=False) as pg, open_index(tmp_path / "b", create=False) as lite:
         pg_runs, lite_runs = pg.list_runs(), lite.list_runs()
@@ -158,9 +151,9 @@ def test_postgresql_holds_the_same_rows_as_sqlite(files, tmp_path: Path, pg_url:
     assert _count(pg_url, "figures") == len(serials) * len(LIMITS)
 
 
-def test_three_stations_write_at_once(files, tmp_path: Path, pg_url: str) -> None:
+def test_three_stations_write_at_once(scaffold_files, tmp_path: Path, pg_url: str) -> None:
     """Three batch processes share one PostgreSQL index: no row lost or duplicated."""
-    procedure, bench = files
+    procedure, bench = scaffold_files
     per_station = 8
     start_at = time.time() + 4.0  # after every spawned worker has imported
     jobs = [
@@ -190,9 +183,9 @@ def _add_all(job: tuple[str, list[str]]) -> int:
         return sum(added for _id, added in index_run_folders(index, folders, station="s"))
 
 
-def test_racing_to_add_the_same_folders_adds_each_once(files, tmp_path: Path,
+def test_racing_to_add_the_same_folders_adds_each_once(scaffold_files, tmp_path: Path,
                                                       pg_url: str) -> None:
-    procedure, _bench = files
+    procedure, _bench = scaffold_files
     runner = AnalyticBoardRunner(procedure)
     folders = [str(runner(f"R-{i}", retest=False, out_dir=tmp_path / "made")[0])
                for i in range(10)]
@@ -202,8 +195,10 @@ def test_racing_to_add_the_same_folders_adds_each_once(files, tmp_path: Path,
     assert _count(pg_url, "runs") == 10
 
 
-def test_stats_and_queries_from_the_cli(files, tmp_path: Path, pg_url: str, capsys) -> None:
-    _batch(files, tmp_path / "a", pg_url, ["P-1", "P-2", "P-3", "P-5"])
+def test_stats_and_queries_from_the_cli(
+    scaffold_files, tmp_path: Path, pg_url: str, capsys
+) -> None:
+    _batch(scaffold_files, tmp_path / "a", pg_url, ["P-1", "P-2", "P-3", "P-5"])
     assert cli.main(["stats", pg_url, "--json", "--figure", "crossover_hz"]) == 0
     assert '"count": 4' in capsys.readouterr().out
     assert cli.main(["index", "failures", "--index", pg_url]) == 0
