@@ -115,6 +115,9 @@ DUT_CASES = [
      ["{path}:2:", "capacitance_f", "finite"]),
     ("nan-root", b"model: rational\npoles_hz: [-1000, nanj]\n",
      ["{path}:2:", "poles_hz", "finite"]),
+    ("absurd-inductance", b"model: lc_oscillator\ninductance_h: 1.0e-300\n",
+     ["{path}", "real circuit"]),
+    ("absurd-gain", b"model: wien\ngain: 1.0e+300\n", ["{path}", "closed-loop pole above"]),
     ("unknown-parameter", b"model: wien\ncapacitance: 1e-9\n",
      ["{path}:2:", "capacitance", "did you mean 'capacitance_f'"]),
 ]

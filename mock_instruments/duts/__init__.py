@@ -13,6 +13,8 @@ import pkgutil
 from pathlib import Path
 from typing import Any, TypeVar
 
+import numpy as np
+
 from loopwright.errors import InputError
 from loopwright.yamlfile import YamlSource, load_yaml, validate
 from mock_instruments.duts.base import DUTModel, DUTParams, LoopSystem
@@ -54,10 +56,51 @@ def _from_source(source: YamlSource, overrides: dict[str, Any]) -> DUTModel:
     return _build(cls, params, source)
 
 
+#: Fastest rate (rad/s) of a DUT's poles, open or closed loop: far above any bench, and
+#: far from where the simulator's time steps would underflow.
+MAX_RATE_RAD_S = 2 * np.pi * 1e12
+
+
+def _check_computable(model: DUTModel) -> None:
+    """Refuse parameters (each valid alone) that give no computable circuit.
+
+    Raises
+    ------
+    ValueError
+        A realisation holds NaN or infinity, or a pole is faster than
+        :data:`MAX_RATE_RAD_S` (e.g. 1e-300 H, or a gain of 1e300).
+    """
+    try:
+        loop = model.loop_system()
+        ch1, ch2 = model.probe_transfer_functions()
+        systems = (("channel 1", ch1.realise()), ("channel 2", ch2.realise()),
+                   ("loop", loop.network))
+    except (np.linalg.LinAlgError, ArithmeticError) as exc:
+        raise ValueError(f"these values give no computable circuit ({exc});"
+                         " use values of a real circuit") from exc
+    net = loop.network
+    for name, system in systems:
+        arrays = (system.A, system.B, system.C, np.atleast_1d(system.D))
+        if not all(np.all(np.isfinite(a)) for a in arrays):
+            raise ValueError(f"these values give the {name} response infinite or undefined"
+                             " coefficients; use values of a real circuit")
+        if system.A.size and np.max(np.abs(np.linalg.eigvals(system.A))) > MAX_RATE_RAD_S:
+            raise ValueError(f"these values put a pole of the {name} response above"
+                             f" {MAX_RATE_RAD_S / (2 * np.pi):g} Hz")
+    if net.A.size:
+        closed = net.A + float(loop.gain) * np.outer(net.B, net.C)
+        rates = np.abs(np.linalg.eigvals(closed))
+        if not np.all(np.isfinite(rates)) or np.max(rates) > MAX_RATE_RAD_S:
+            raise ValueError("these values put a closed-loop pole above"
+                             f" {MAX_RATE_RAD_S / (2 * np.pi):g} Hz or make it undefined")
+
+
 def _build(cls: type[DUTModel], params: DUTParams, source: YamlSource) -> DUTModel:
     try:
-        return cls(params)
-    except ValueError as exc:
+        model = cls(params)
+        _check_computable(model)
+        return model
+    except (ValueError, ArithmeticError) as exc:
         # Cross-field problems found while building the circuit (e.g. an unstable
         # polynomial form); the model names the field in its message.
         field = getattr(exc, "field", None)
