@@ -446,3 +446,23 @@ def test_real_generator_without_a_terminal_needs_yes(tmp_path, start_sim_bench):
     assert any("OUTP1 ON" in line for line in received)
     assert not server.bench.generator.output_on
     assert len(list(out.iterdir())) == 1
+
+
+def test_markup_in_file_strings_is_shown_as_text(tmp_path, capsys):
+    """Labels and limit names are printed as written, never read as rich markup."""
+    procedure = tmp_path / "p.yaml"
+    procedure.write_text(
+        "name: markup\nmethod: broken_loop\nlimits:\n"
+        "  - name: \"[bold red]pm[/] [/]\"\n    figure: phase_margin_deg\n    min: -180\n"
+        "steps:\n  - kind: sweep\n    label: \"[link=x]sweep[/link] [/]\"\n"
+        "    frequencies_hz: [1000, 2000, 4000]\n    amplitude_vpp: 0.1\n"
+        "    settle_cycles: 1\n    cycles_per_record: 4\n    min_samples: 256\n")
+    bench = tmp_path / "bench.yaml"
+    bench.write_text("simulated:\n  dut: rational\n  seed: 1\n"
+                     "max_amplitude_vpp: 1.0\nmax_frequency_hz: 1.0e6\n")
+    code = main(["run", str(procedure), "--bench", str(bench), "--out",
+                 str(tmp_path / "runs [x]"), "--no-report"])
+    out, err = capsys.readouterr()
+    assert code == 0, err
+    assert "[link=x]sweep[/link] [/]" in out
+    assert "[bold red]pm[/] [/]" in out
