@@ -27,6 +27,7 @@ import threading
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
+from unittest import mock
 
 import pytest
 from hypothesis import given, settings
@@ -466,3 +467,23 @@ def test_markup_in_file_strings_is_shown_as_text(tmp_path, capsys):
     assert code == 0, err
     assert "[link=x]sweep[/link] [/]" in out
     assert "[bold red]pm[/] [/]" in out
+
+
+def test_batch_serials_with_markup_stay_text(tmp_path, capsys):
+    """A scanned serial is data: '[/]' is a serial, not a markup tag (it crashed before)."""
+    procedure = tmp_path / "p.yaml"
+    procedure.write_text(
+        "name: batch\nmethod: broken_loop\nsteps:\n  - kind: sweep\n"
+        "    frequencies_hz: [1000, 2000, 4000]\n    amplitude_vpp: 0.1\n"
+        "    settle_cycles: 1\n    cycles_per_record: 4\n    min_samples: 256\n")
+    bench = tmp_path / "bench.yaml"
+    bench.write_text("simulated:\n  dut: rational\n  seed: 1\n"
+                     "max_amplitude_vpp: 1.0\nmax_frequency_hz: 1.0e6\n")
+    scanned = io.StringIO("[/]\n[bold]" + "y" * 200 + "[/]\n\n")
+    with mock.patch.object(sys, "stdin", scanned):
+        code = main(["batch", str(procedure), "--bench", str(bench), "--out",
+                     str(tmp_path / "out")])
+    out, err = capsys.readouterr()
+    assert code == 0, err
+    assert "board [/]" in out and "at most 128" in out
+    assert len([p for p in (tmp_path / "out").iterdir() if p.is_dir()]) == 1

@@ -637,7 +637,7 @@ def _render(run_dir: Path, console: Console) -> None:
     try:
         render_report(run_dir)
     except LoopwrightError as exc:
-        console.print(f"[bold yellow]warning:[/] the report was not rendered: {exc}")
+        console.print(f"[bold yellow]warning:[/] the report was not rendered: {escape(str(exc))}")
     except Exception as exc:  # a plotting bug must not fail a finished run
         console.print(f"[bold yellow]warning:[/] the report was not rendered (a bug:"
                       f" {type(exc).__name__}: {exc}); the run folder is complete;"

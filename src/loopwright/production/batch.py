@@ -23,6 +23,7 @@ from typing import Any, Protocol, TextIO
 
 from rich.align import Align
 from rich.console import Console, Group
+from rich.markup import escape
 from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
@@ -273,11 +274,11 @@ def run_batch(
                 ended_by = "end of input"
                 break
             if not _is_terminal(input_stream):
-                console.print(line.strip(), highlight=False)  # echo scripted input
+                console.print(line.strip(), highlight=False, markup=False)  # echo input
             try:
                 serial = clean_serial(line)
             except InputError as exc:
-                console.print(f"[red]{exc}[/red] Scan again.")
+                console.print(f"[red]{escape(str(exc))}[/red] Scan again.")
                 continue
             if not serial:
                 ended_by = "empty line"
