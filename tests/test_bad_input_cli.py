@@ -96,6 +96,11 @@ BENCH_CASES = [
      ["{path}:8:", "channels.response", "different"]),
     ("unknown-transport", SIM_BENCH.replace(b"seed: 1", b"transport: udp"),
      ["{path}:3:", "simulated.transport", "tcp"]),
+    # refused when the bench is read, before a run folder is made
+    ("unknown-dut", SIM_BENCH.replace(b"rational", b"rationl"),
+     ["{path}:2:", "simulated.dut", "did you mean 'rational'"]),
+    ("missing-dut-file", SIM_BENCH.replace(b"rational", b"no_such_board.yaml"),
+     ["{path}:2:", "simulated.dut", "no DUT file"]),
 ]
 
 DRIVER_CASES = [

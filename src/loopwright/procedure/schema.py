@@ -871,7 +871,29 @@ def _bench_from(source: YamlSource) -> Bench:
         raise source.error((), "a bench file is a mapping (generator, scope, caps...)")
     bench = _validate(Bench, source)
     bench._source = source
+    _check_simulated_dut(bench, source)
     return bench
+
+
+def _check_simulated_dut(bench: Bench, source: YamlSource) -> None:
+    """A simulated bench's DUT must exist (and its file be valid) before a run starts."""
+    if bench.simulated is None:
+        return
+    from mock_instruments.duts import DUTS, load_dut
+
+    dut = bench.simulated.dut
+    if not dut.lower().endswith((".yaml", ".yml")):
+        if dut not in DUTS:
+            guess = difflib.get_close_matches(dut, list(DUTS), n=1)
+            hint = f"; did you mean {guess[0]!r}?" if guess else ""
+            raise source.error(("simulated", "dut"), f"unknown DUT model {dut!r}{hint or '.'}"
+                               f" Known: {', '.join(sorted(DUTS))}, or a DUT .yaml file")
+        return
+    path = Path(bench.simulated_dut or dut)
+    if not path.is_file():
+        raise source.error(("simulated", "dut"), f"no DUT file at {str(path)!r}"
+                           " (a relative path is read from the bench file's folder)")
+    load_dut(path)  # its own errors name the DUT file, line and field
 
 
 def loads_procedure(text: str, path: str = "<string>") -> Procedure:
