@@ -10,7 +10,7 @@ and bytes run too.
 
 The property: loading ends either in success or in our own error
 (:class:`loopwright.errors.LoopwrightError`); an :class:`InputError` names the file
-(and the line where the YAML parsed). The same file through the command line
+and, for every non-empty file, the line. The same file through the command line
 (``loopwright.cli.main`` in process) exits 0 or 2 with exactly one line on stderr,
 never a traceback.
 
@@ -228,8 +228,9 @@ def load_outcome(kind: str, path: Path) -> LoopwrightError | None:
         LOADERS[kind](path)
     except LoopwrightError as exc:
         if isinstance(exc, InputError):
-            # a file's error names the file
+            # a file's error names the file, and the line whenever the file has text
             assert exc.path == str(path), exc
+            assert exc.line is not None or path.stat().st_size == 0, exc
         assert "\n" not in str(exc), repr(str(exc))
         return exc
     return None
