@@ -188,3 +188,23 @@ def test_short_settling_is_flagged_unsettled(tmp_path, start_sim_bench):
     unsettled_patient = patient["flags"].str.contains("unsettled").sum()
     assert unsettled_hurried >= 6
     assert unsettled_patient == 0
+
+
+def test_plan_the_instruments_cannot_do_is_refused_before_output(tmp_path, start_sim_bench,
+                                                                 capsys):
+    """An amplitude below the generator driver's minimum: exit 2, nothing switched on."""
+    from loopwright.cli import main
+
+    server = start_sim_bench("rational", switch=None)
+    procedure = tmp_path / "tiny.yaml"
+    procedure.write_text("name: tiny\nsign: 1\nmethod: broken_loop\nsteps:\n"
+                         "  - kind: sweep\n    start_hz: 100\n    stop_hz: 1000\n"
+                         "    count: 4\n    amplitude_vpp: 0.0001\n")
+    code = main(["run", str(procedure), "--bench",
+                 str(hardware_style_bench(tmp_path, server.resources)),
+                 "--out", str(tmp_path / "runs"), "--yes", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert f"{procedure}:5: steps[0]: amplitude_vpp = 0.0001" in err
+    assert not server.bench.generator.output_on
+    assert "OUTP1 ON" not in (next((tmp_path / "runs").iterdir()) / "traffic.log").read_text()

@@ -26,6 +26,7 @@ from rich.markup import escape
 from loopwright.dsp import fit_sine_4p
 from loopwright.errors import (
     EstimationError,
+    InputError,
     InstrumentError,
     LoopwrightError,
     RunError,
@@ -584,6 +585,12 @@ def run_procedure(procedure_path: str | Path, bench_path: str | Path,
         except LoopwrightError as exc:
             folder.finish("failed", f"cannot open the bench: {exc}")
             raise
+        try:
+            check_feasible(procedure, connection)
+        except LoopwrightError as exc:
+            folder.finish("failed", f"refused before any output: {exc}")
+            connection.close()
+            raise
         folder.update_manifest(status="running", instruments=connection.instruments,
                                simulated=connection.simulated)
         guard = OutputGuard(lambda: connection.generator, connection.reopen_generator)
@@ -620,6 +627,50 @@ def run_procedure(procedure_path: str | Path, bench_path: str | Path,
         raise RunError(f"run failed ({reason}); its points are kept in {folder.path};"
                        f" continue it with --resume {folder.path}")
     return RunOutcome(folder.path, status, reason, summary, output_off)
+
+
+def check_feasible(procedure: Procedure, connection: BenchConnection) -> None:
+    """Refuse, before any output, a plan these instruments cannot carry out.
+
+    Every planned frequency and amplitude of every sweep and calibration is checked
+    against the generator driver's limits, and every frequency against what the scope
+    can record (enough cycles and samples per cycle); the first problem names the step.
+
+    Raises
+    ------
+    InputError
+        A planned value is outside what the instruments can do (exit code 2).
+    """
+    generator, scope = connection.generator, connection.scope
+    max_rate = _scope_limit(scope, "sample_rate_hz", 1e9)
+    max_length = int(_scope_limit(scope, "points", 1_000_000))
+    limit = getattr(generator, "limit", None)
+    for index, step in enumerate(procedure.steps):
+        if isinstance(step, CalibrateStep):
+            step = procedure.calibration_plan(index)
+        elif not isinstance(step, SweepStep):
+            continue
+        def refuse(message: str, index: int = index) -> InputError:
+            if procedure.source is not None:
+                return procedure.source.error(("steps", index), message)
+            return InputError(message, field=f"steps[{index}]")
+
+        for frequency_hz in frequency_plan(step):
+            f = float(frequency_hz)
+            try:
+                record_settings(step, f, max_rate, max_length)
+            except InputError as exc:
+                raise refuse(exc.message) from exc
+            amplitude_vpp = amplitude_at(step, f, connection.bench.max_amplitude_vpp)
+            if limit is None:
+                continue
+            for name, value in (("frequency_hz", f), ("amplitude_vpp", amplitude_vpp)):
+                low, high = limit(name, "min"), limit(name, "max")
+                if not low <= value <= high:
+                    raise refuse(
+                        f"{name} = {value:g} is outside what the generator"
+                        f" ({connection.instruments['generator']['driver']}) can do,"
+                        f" {low:g} to {high:g}; change the plan or the amplitude")
 
 
 def _check_resume_matches(folder: RunFolder, procedure: Procedure) -> None:
