@@ -170,10 +170,12 @@ class ClosedLoopRun:
             self.t_s = float(t_s)
             return
         span = min(gap, self.max_advance_s)
-        count = int(span // self.step_s)
+        # a stiff loop has a tiny step: integrate at most MAX_STEPS, let time jump after
+        count = min(int(span // self.step_s), MAX_STEPS)
         if count:
             self.x = self._steps(self.x, count, self.step_s)[0][-1]
-        self.t_s = float(t_s) if gap > self.max_advance_s else self.t_s + count * self.step_s
+        jumped = gap > self.max_advance_s or count == MAX_STEPS
+        self.t_s = float(t_s) if jumped else self.t_s + count * self.step_s
 
     def sample(self, times_s: list[np.ndarray]) -> list[np.ndarray]:
         """Loop voltage at each array of times (all at or after the loop's time).
