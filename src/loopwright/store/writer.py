@@ -236,6 +236,9 @@ class RunFolder:
         """
         root = Path(root)
         moment = now or datetime.now().astimezone()
+        if root.exists() and not root.is_dir():
+            raise InputError("the runs folder is a file, not a folder; give another --out",
+                             path=root)
         try:
             root.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
