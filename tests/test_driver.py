@@ -49,10 +49,10 @@ def test_generator_source_tree_exact_commands(scpi_recorder):
     assert scpi_recorder.commands == ["*IDN?", "*CLS", "SOUR1:VOLT:UNIT VPP", "SYST:ERR?"]
     mark = len(scpi_recorder.commands)
     gen.set_sine(1000.0, 0.5, 0.25)
-    # amplitude shrinks (1 -> 0.5): amplitude before offset
+    # amplitude shrinks (1 -> 0.5): amplitude, then offset, then frequency
     assert scpi_recorder.sent_since(mark) == [
-        "SOUR1:VOLT?", "SOUR1:FUNC SIN", "SOUR1:FREQ 1000", "SOUR1:VOLT 0.5",
-        "SOUR1:VOLT:OFFS 0.25", "SYST:ERR?"]
+        "SOUR1:VOLT?", "SOUR1:FUNC SIN", "SOUR1:VOLT 0.5", "SOUR1:VOLT:OFFS 0.25",
+        "SOUR1:FREQ 1000", "SYST:ERR?"]
     mark = len(scpi_recorder.commands)
     gen.set_frequency(12345.678901)
     gen.set_frequency(1.5e7)
@@ -77,7 +77,7 @@ def test_generator_output_tree_exact_commands(scpi_recorder):
     assert gen.driver_name == "generator-output-tree"
     mark = len(scpi_recorder.commands)
     gen.set_sine(250e3, 4.0, -1.5)
-    # amplitude grows (0.1 -> 4): offset before amplitude
+    # amplitude grows (0.1 -> 4): frequency, then offset, then amplitude
     assert scpi_recorder.sent_since(mark) == [
         "OUTP:CH1:AMPL?", "OUTP:CH1:SHAP SINE", "OUTP:CH1:FREQ 250000",
         "OUTP:CH1:DCOF -1.5", "OUTP:CH1:AMPL 4", "SYST:ERR:NEXT?"]

@@ -261,7 +261,9 @@ class TemplateGenerator(TemplateInstrument):
         """Select a sine and set frequency, amplitude and offset (output unchanged).
 
         The amplitude goes first when it shrinks and last when it grows, so no
-        intermediate state exceeds the peak limit the instrument enforces.
+        intermediate state exceeds the peak limit the instrument enforces, and the new
+        frequency never sees the larger of the old and new amplitudes (the output may
+        be on, e.g. after a reconnect).
         """
         fields = self._check(frequency_hz, amplitude_vpp, offset_v)
         commands = self._need("commands")
@@ -269,10 +271,11 @@ class TemplateGenerator(TemplateInstrument):
             self._amplitude_vpp = self.session.query_float(self._need("readback").amplitude_vpp)
         amplitude_cmds = [render(t, fields) for t in commands.set_amplitude]
         offset_cmds = [render(t, fields) for t in commands.set_offset]
-        ordered = (amplitude_cmds + offset_cmds if amplitude_vpp <= self._amplitude_vpp
-                   else offset_cmds + amplitude_cmds)
-        sequence = ([render(t, fields) for t in commands.select_sine]
-                    + [render(t, fields) for t in commands.set_frequency] + ordered)
+        frequency_cmds = [render(t, fields) for t in commands.set_frequency]
+        ordered = (amplitude_cmds + offset_cmds + frequency_cmds
+                   if amplitude_vpp <= self._amplitude_vpp
+                   else frequency_cmds + offset_cmds + amplitude_cmds)
+        sequence = [render(t, fields) for t in commands.select_sine] + ordered
         self.send(sequence, "set_sine")
         self._amplitude_vpp, self._offset_v = float(amplitude_vpp), float(offset_v)
 
