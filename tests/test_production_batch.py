@@ -322,6 +322,14 @@ def test_missing_files_and_bad_index_are_our_errors(scaffold_files, tmp_path: Pa
     (tmp_path / "other.sqlite").write_bytes(b"")
     assert cli.main(["stats", str(tmp_path / "other.sqlite")]) == 1
     assert "not a loopwright results index" in capsys.readouterr().err
+    assert (tmp_path / "other.sqlite").read_bytes() == b""  # a query writes nothing
+    # a file that is not a database at all: one line, no traceback
+    (tmp_path / "notes.txt").write_bytes(b"frequency_hz,gain_db\n\x00\xff")
+    for argv in (["stats", str(tmp_path / "notes.txt")],
+                 ["index", "list", "--index", str(tmp_path / "notes.txt")]):
+        assert cli.main(argv) == 1
+        err = capsys.readouterr().err
+        assert "is not a database" in err and err.count("\n") == 1
 
 
 def test_malformed_summary_names_file_and_field(scaffold_files, tmp_path: Path, capsys) -> None:

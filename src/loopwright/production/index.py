@@ -272,7 +272,10 @@ class ResultsIndex:
                 conn.execution_options(loopwright_write=True)
                 with conn.begin():
                     yield conn
-        except sa_exc.OperationalError as exc:
+        except sa_exc.IntegrityError:
+            raise  # add_run's race with another station; it decides
+        except sa_exc.DatabaseError as exc:
+            # OperationalError (locked, unreachable) and a file that is no database.
             raise ResultsIndexError(self._explain(exc)) from exc
 
     @contextmanager
@@ -280,7 +283,7 @@ class ResultsIndex:
         try:
             with self.engine.connect() as conn:
                 yield conn
-        except sa_exc.OperationalError as exc:
+        except sa_exc.DatabaseError as exc:
             raise ResultsIndexError(self._explain(exc)) from exc
 
     def _explain(self, exc: sa_exc.DBAPIError) -> str:
@@ -503,6 +506,9 @@ def open_index(location: str | Path | URL, *, create: bool = True) -> ResultsInd
         path = Path(str(url.database))
         if not create and not path.is_file():
             raise InputError(f"no results index at {path}", field="--index")
+        if not create and path.stat().st_size == 0:
+            # SQLite would take an empty file as a new database and write to it.
+            raise ResultsIndexError(f"{path} is not a loopwright results index (empty file)")
         if create:
             try:
                 path.parent.mkdir(parents=True, exist_ok=True)
