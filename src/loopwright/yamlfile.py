@@ -252,7 +252,7 @@ def _message(err: Mapping[str, Any], model: type[BaseModel], loc: FieldPath) -> 
         guess = difflib.get_close_matches(str(loc[-1]), allowed, n=1) if loc else []
         hint = f"; did you mean {guess[0]!r}?" if guess else ""
         listing = f" Allowed keys: {', '.join(allowed)}." if allowed else ""
-        return f"unknown key{hint}{listing}"
+        return f"unknown key{hint or ('.' if listing else '')}{listing}"
     if kind == "missing":
         return "required field is missing"
     msg = str(err.get("msg", "invalid value"))

@@ -797,7 +797,7 @@ def _improve(error: InputError, root: type[BaseModel], source: YamlSource) -> In
             guess = difflib.get_close_matches(str(loc[-1]), allowed, n=1)
             hint = f"; did you mean {guess[0]!r}?" if guess else ""
             more = re.search(r" \(and \d+ more problems?\)$", message)
-            message = f"unknown key{hint} Allowed keys: {', '.join(allowed)}."
+            message = f"unknown key{hint or '.'} Allowed keys: {', '.join(allowed)}."
             if more:
                 message += more.group(0)
     else:
