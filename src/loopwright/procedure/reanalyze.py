@@ -32,12 +32,14 @@ from typing import Any
 
 import numpy as np
 import yaml
+from rich.console import Console
 
 from loopwright.errors import EstimationError, InputError, LoopwrightError
 from loopwright.instruments.roles import Capture, ChannelSettings
 from loopwright.procedure.measure import PointMeasurer, QualityLimits
 from loopwright.procedure.replay import check_replayable
 from loopwright.procedure.results import loop_figures, point_row, summary_record
+from loopwright.procedure.runner import _render
 from loopwright.procedure.schema import Procedure, SweepStep, loads_procedure
 from loopwright.store.load import mismatch_at
 from loopwright.store.names import utc_iso
@@ -158,7 +160,19 @@ def _stored_row(row: dict[str, Any]) -> dict[str, Any]:
 
 def loop_analysis(frequency_hz: Sequence[float], h: Sequence[complex]
                   ) -> dict[str, Any] | None:
-    """The loop figures of one sweep as the runner computes them (sorted, unique f)."""
+    """The loop figures of one sweep as the runner computes them, or None.
+
+    Parameters
+    ----------
+    frequency_hz, h
+        The sweep's points in any order (:func:`loop_figures` sorts them and drops
+        repeated frequencies).
+
+    Returns
+    -------
+    dict or None
+        None with fewer than 2 points or when the points give no loop figures.
+    """
     if len(frequency_hz) < 2:
         return None
     try:
@@ -263,12 +277,8 @@ def reanalyze_run(run_dir: str | Path, *, estimator: str | None = None,
         folder.write_summary(summary)
         folder.finish("complete", None)
     if render_report:
-        try:
-            from loopwright.report import render_report as render
-        except ImportError:
-            render = None
-        if render is not None:
-            render(folder.path)
+        # as after a run: a report that cannot be drawn is a warning, the folder is done
+        _render(folder.path, Console(stderr=True))
     return ReanalysisOutcome(folder.path, summary, recomputed, copied, single)
 
 
