@@ -131,6 +131,40 @@ def test_output_off_after_exception_in_process(tmp_path, start_sim_bench, monkey
     assert json.loads((run_dir / "manifest.json").read_text())["status"] == "failed"
 
 
+def test_point_that_cannot_be_estimated_is_skipped_and_recorded(tmp_path, start_sim_bench,
+                                                               monkeypatch):
+    """An EstimationError at one point: that point is skipped and listed in the manifest's
+    recoveries, every other point is stored once, and the run completes."""
+    from loopwright.errors import EstimationError
+    from loopwright.procedure.plan import frequency_plan
+    from loopwright.procedure.schema import load_procedure
+
+    server = start_sim_bench("rational", switch=None)
+    import loopwright.procedure.measure as measure
+
+    procedure = slow_procedure(tmp_path, count=5)
+    plan = frequency_plan(load_procedure(procedure).steps[0])
+    skipped_hz = float(plan[2])
+    real = measure.estimate_point
+
+    def failing(reference, response, rate, frequency_hz, **kwargs):
+        if frequency_hz == skipped_hz:
+            raise EstimationError("injected: flat reference")
+        return real(reference, response, rate, frequency_hz, **kwargs)
+
+    monkeypatch.setattr(measure, "estimate_point", failing)
+    outcome = run_procedure(procedure, hardware_style_bench(tmp_path, server.resources),
+                            RunOptions(out_dir=tmp_path / "runs", quiet=True,
+                                       assume_yes=True, render_report=False))
+    assert outcome.status == "complete"
+    stored = pd.read_csv(outcome.run_dir / "points.csv")["frequency_hz"].to_numpy()
+    np.testing.assert_array_equal(np.sort(stored), np.delete(plan, 2))
+    manifest = json.loads((outcome.run_dir / "manifest.json").read_text())
+    assert [r["frequency_hz"] for r in manifest["recoveries"]] == [skipped_hz]
+    assert manifest["recoveries"][0]["action"] == "point skipped"
+    assert not server.bench.generator.output_on
+
+
 def test_resume_after_sigkill_loses_and_repeats_nothing(tmp_path, start_sim_bench):
     """SIGKILL mid-sweep, then --resume: every point before the kill kept, none twice."""
     server = start_sim_bench("rational", realtime=True, switch=None)

@@ -352,7 +352,10 @@ class Runner:
                 lambda: self._measure_at(step, frequency_hz, calibrating=False), frequency_hz)
         except EstimationError as exc:
             # the point cannot be estimated (e.g. a flat reference): record why, go on
-            self.progress.warn(f"{format_frequency(frequency_hz)}: {exc}")
+            self.recoveries.append({"frequency_hz": frequency_hz, "attempt": 1,
+                                    "error": f"{type(exc).__name__}: {exc}",
+                                    "action": "point skipped"})
+            self.progress.warn(f"{format_frequency(frequency_hz)}: {exc}; point skipped")
             return
         measured_h.append(self._store(index, frequency_hz, amplitude_vpp, result, refined))
         measured_f.append(frequency_hz)
