@@ -8,12 +8,11 @@ phase (deg), and the std columns carry that std, as a measured run's points do.
 
 from __future__ import annotations
 
+import control  # the reference (test dependency): a missing one fails, never skips
 import numpy as np
 import pytest
 
 from loopwright.analysis import FrequencyResponse, analyze_loop
-
-control = pytest.importorskip("control")
 
 F_SCALE_HZ = 1e4
 TRIALS = 200

@@ -16,6 +16,7 @@ from loopwright.dsp.windows import make_window
 HARRIS_TABLE_I = {
     "rectangular": (3.92, 1.00),
     "hann": (1.42, 1.50),
+    "blackman-harris": (0.83, 2.00),  # the 4-term -92 dB row (mem)
 }
 
 
