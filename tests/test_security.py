@@ -487,3 +487,24 @@ def test_batch_serials_with_markup_stay_text(tmp_path, capsys):
     assert code == 0, err
     assert "board [/]" in out and "at most 128" in out
     assert len([p for p in (tmp_path / "out").iterdir() if p.is_dir()]) == 1
+
+
+# Numbers out of range on the command line end in our one-line error (exit 2) before
+# anything is opened; each of these was a traceback (numpy seed, VISA timeout, pydantic).
+@pytest.mark.parametrize("argv", [
+    ["identify", "TCPIP::127.0.0.1::1::SOCKET", "--timeout", "-1"],
+    ["identify", "TCPIP::127.0.0.1::1::SOCKET", "--timeout", "nan"],
+    ["identify", "TCPIP::127.0.0.1::1::SOCKET", "--timeout", "1e300"],
+    ["sim", "serve", "--seed", "-1"],
+    ["replay", "{run}", "--seed", "-3"],
+    ["replay", "{run}", "--step", "-1"],
+], ids=["timeout-negative", "timeout-nan", "timeout-huge", "sim-seed", "replay-seed",
+        "replay-step"])
+def test_out_of_range_options_end_in_our_error(argv, tmp_path, capsys):
+    run = tmp_path / "run"
+    run.mkdir()
+    code = main([a.format(run=run) for a in argv])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert err.startswith("loopwright: error: --") and err.count("\n") == 1, err
+    assert not any(p.name != "run" for p in tmp_path.iterdir())

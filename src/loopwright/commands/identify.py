@@ -4,8 +4,12 @@ from __future__ import annotations
 
 import argparse
 
+from loopwright.errors import InputError
 from loopwright.instruments.driver import ROLES, find_drivers
 from loopwright.instruments.session import Session
+
+#: Longest read timeout accepted on the command line, seconds (one hour).
+MAX_TIMEOUT_S = 3600.0
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -26,6 +30,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Print the identity and the matching drivers; exit 1 when none matches."""
+    # an upper bound keeps the value within what the VISA layer accepts (milliseconds)
+    if not 0 < args.timeout <= MAX_TIMEOUT_S:
+        raise InputError(f"--timeout must be more than 0 and at most {MAX_TIMEOUT_S:g}"
+                         f" seconds, got {args.timeout}")
     with Session(args.resource, backend=args.backend, timeout_s=args.timeout) as session:
         identity = session.identity
     print(f"resource  {args.resource}")

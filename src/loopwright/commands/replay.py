@@ -8,6 +8,7 @@ from typing import Any
 from rich.console import Console
 
 from loopwright.commands.run import print_outcome
+from loopwright.errors import InputError
 from loopwright.procedure.replay import replay_run
 
 
@@ -41,6 +42,10 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Replay; 0 = complete, 130 = stopped by the operator."""
+    if args.seed is not None and args.seed < 0:
+        raise InputError(f"--seed must be a whole number >= 0, got {args.seed}")
+    if args.step is not None and args.step < 0:
+        raise InputError(f"--step must be a step index >= 0, got {args.step}")
     console = Console()
     outcome = replay_run(args.run_dir, procedure=args.procedure, out_dir=args.out,
                          seed=args.seed, step=args.step, quiet=args.quiet,

@@ -129,6 +129,8 @@ def run_serve(args: argparse.Namespace) -> int:
         raise InputError(f"--noise must be >= 0 volts rms, got {args.noise}")
     if not 0 <= args.port <= 65533:
         raise InputError(f"--port must be 0 (free ports) or 1..65533, got {args.port}")
+    if args.seed is not None and args.seed < 0:
+        raise InputError(f"--seed must be a whole number >= 0, got {args.seed}")
     stop = threading.Event()
     # Handlers first, so a SIGTERM during start-up still ends in a clean exit.
     previous = {
