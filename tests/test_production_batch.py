@@ -214,6 +214,24 @@ def test_index_cli_queries(batch, capsys) -> None:
     assert capsys.readouterr().out.count("already indexed") == len(folders)
 
 
+def test_markup_in_serials_figures_and_units_is_printed_as_text(
+        scaffold_files, tmp_path: Path, capsys) -> None:
+    # a scanned serial "[/]" or a hand-edited summary.json must not reach rich as markup
+    procedure, _bench = scaffold_files
+    run_dir, _ = AnalyticBoardRunner(procedure)("[/]", retest=False, out_dir=tmp_path / "r")
+    summary = json.loads((run_dir / "summary.json").read_text())
+    summary["limits"][0].update(figure="[/bold]", name="[red]x[/]", unit="[/u]", passed=False)
+    (run_dir / "summary.json").write_text(json.dumps(summary))
+    idx = str(tmp_path / "idx.sqlite")
+    assert cli.main(["index", "add", "--index", idx, str(run_dir)]) == 0
+    capsys.readouterr()
+    for argv in (["index", "list", "--index", idx], ["index", "failures", "--index", idx],
+                 ["index", "show", "", "--index", idx], ["stats", idx]):
+        assert cli.main(argv) == 0, argv
+        screen = capsys.readouterr().out
+        assert "[/]" in screen or "[/bold]" in screen, argv
+
+
 def test_index_add_marks_retests_and_reads_station(scaffold_files, tmp_path: Path, capsys) -> None:
     procedure, _bench = scaffold_files
     runner = AnalyticBoardRunner(procedure, station="bench-7")

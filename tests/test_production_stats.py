@@ -14,6 +14,7 @@ import pandas as pd
 import pytest
 from scipy import stats as sps
 
+from loopwright.errors import InputError
 from loopwright.production.stats import (
     FigureStats,
     capability,
@@ -112,3 +113,8 @@ def test_png_is_written(tmp_path) -> None:
     st = figure_stats("x", values, limit_min=0.0, limit_max=4.0, unit="V")
     path = write_histogram_png(tmp_path / "sub" / "h.png", [(st, values)], title="t")
     assert path.read_bytes()[:4] == b"\x89PNG"
+    # the name as given (no ".png" appended behind the caller's back); a folder is refused
+    bare = write_histogram_png(tmp_path / "hist", [(st, values)])
+    assert bare == tmp_path / "hist" and bare.read_bytes()[:4] == b"\x89PNG"
+    with pytest.raises(InputError, match="cannot write the histogram"):
+        write_histogram_png(tmp_path, [(st, values)])

@@ -60,6 +60,13 @@ def _dump(obj) -> None:
     print(json.dumps(obj, indent=2, default=_jsonable))
 
 
+def _text(value):
+    """A table cell from the index shown as plain text (a serial '[/]' is no markup)."""
+    from rich.text import Text
+
+    return Text("" if value is None else str(value))
+
+
 def _when(value) -> str:
     return value.isoformat(sep=" ", timespec="seconds") if isinstance(value, datetime) else "-"
 
@@ -88,9 +95,9 @@ def run_list(args: argparse.Namespace) -> int:
         table.add_column(col)
     for r in rows:
         table.add_row(
-            r["run_id"][:8], _when(r["started_utc"]), r["serial"], r["station"],
-            r["operator"] or "", r["verdict"] or "", "yes" if r["retest"] else "",
-            r["status"] or "",
+            r["run_id"][:8], _when(r["started_utc"]), _text(r["serial"]),
+            _text(r["station"]), _text(r["operator"]), _text(r["verdict"]),
+            "yes" if r["retest"] else "", _text(r["status"]),
         )
     Console().print(table)
     return 0
@@ -115,14 +122,14 @@ def run_show(args: argparse.Namespace) -> int:
     for key, value in run.items():
         if key != "figures":
             console.print(f"{key:>17}  {_when(value) if isinstance(value, datetime) else value}",
-                          highlight=False)
+                          highlight=False, markup=False)
     table = Table(title="limited figures")
     for col in ("limit", "figure", "value", "min", "max", "unit", "passed", "margin"):
         table.add_column(col)
     for f in run["figures"]:
         table.add_row(
-            f["limit_name"], f["figure"], _num(f["value"]), _num(f["limit_min"]),
-            _num(f["limit_max"]), f["unit"] or "",
+            _text(f["limit_name"]), _text(f["figure"]), _num(f["value"]),
+            _num(f["limit_min"]), _num(f["limit_max"]), _text(f["unit"]),
             {True: "pass", False: "FAIL", None: "-"}[f["passed"]], _num(f["margin"]),
         )
     console.print(table)
@@ -147,9 +154,9 @@ def run_failures(args: argparse.Namespace) -> int:
         table.add_column(col)
     for r in rows:
         table.add_row(
-            r["run_id"][:8], _when(r["started_utc"]), r["serial"], r["station"],
-            r["limit_name"], _num(r["value"]), _num(r["limit_min"]), _num(r["limit_max"]),
-            r["unit"] or "",
+            r["run_id"][:8], _when(r["started_utc"]), _text(r["serial"]), _text(r["station"]),
+            _text(r["limit_name"]), _num(r["value"]), _num(r["limit_min"]),
+            _num(r["limit_max"]), _text(r["unit"]),
         )
     Console().print(table)
     return 0

@@ -33,6 +33,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
+    from rich.markup import escape
 
     from loopwright.errors import InputError
     from loopwright.production.index import open_index, parse_utc
@@ -57,11 +58,11 @@ def run(args: argparse.Namespace) -> int:
         console = Console()
         runs = frame["run_id"].nunique() if not frame.empty else 0
         retests = int(frame.drop_duplicates("run_id")["retest"].sum()) if runs else 0
-        console.print(f"{where}: {runs} runs ({retests} retests) with limited figures")
+        console.print(f"{escape(where)}: {runs} runs ({retests} retests) with limited figures")
         for g in groups:
-            unit = f" ({g.unit})" if g.unit else ""
-            console.print(
-                f"\n[bold]{g.figure}[/bold]{unit}   LSL {_f(g.limit_min)}   "
+            unit = escape(f" ({g.unit})") if g.unit else ""
+            console.print(  # names and units come from files: escaped, never markup
+                f"\n[bold]{escape(g.figure)}[/bold]{unit}   LSL {_f(g.limit_min)}   "
                 f"USL {_f(g.limit_max)}\n  [bold]Cpk {_f(g.cpk, 3)}[/bold]  n {g.count}  "
                 f"fail {g.failed}  mean {_f(g.mean)}  std {_f(g.std)}  min {_f(g.min)}  "
                 f"max {_f(g.max)}",

@@ -276,7 +276,7 @@ def write_histogram_png(
         fig.suptitle(title, fontsize=11)
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
-        fig.savefig(out, dpi=110)
+        fig.savefig(out, dpi=110, format="png")  # the name as given, no ".png" added
     except OSError as exc:
         raise InputError(f"cannot write the histogram: {exc}", path=out) from exc
     return out
