@@ -71,6 +71,15 @@ def test_tank_example_predicts_oscillation(capsys) -> None:
     assert data["resonances"][0]["q"] == pytest.approx(40, rel=1e-3)
 
 
+def test_table_shows_a_bracketed_path_as_text(tmp_path, capsys) -> None:
+    # a folder "x[" and a file "y].csv" make the path hold "[/y]": text, not rich markup
+    (tmp_path / "x[").mkdir()
+    odd = tmp_path / "x[" / "y].csv"
+    odd.write_bytes((EXAMPLES / "buck_loop_response.csv").read_bytes())
+    assert main(["analyze", str(odd)]) == 0
+    assert "[/y].csv" in capsys.readouterr().out.replace("\n", "")
+
+
 def test_examples_are_what_the_script_writes(tmp_path, monkeypatch) -> None:
     # The committed CSVs are reproducible from the script (deterministic, seeded).
     module = _examples_module()

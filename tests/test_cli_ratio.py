@@ -110,6 +110,15 @@ def test_table_output(good_csv, capsys):
     assert f"{20 * math.log10(abs(h)):.4f} dB" in out
 
 
+def test_table_output_shows_a_bracketed_path_as_text(good_csv, tmp_path, capsys):
+    # a folder "x[" and a file "y].csv" make the path hold "[/y]": text, not rich markup
+    (tmp_path / "x[").mkdir()
+    odd = tmp_path / "x[" / "y].csv"
+    odd.write_bytes(good_csv.read_bytes())
+    code, out, _ = _run(["ratio", str(odd), "--frequency", str(F)], capsys)
+    assert code == 0 and "[/y].csv" in out.replace("\n", "")
+
+
 def test_window_with_sinefit_is_refused(good_csv, capsys):
     code, _, err = _run(["ratio", str(good_csv), "--frequency", str(F), "--window", "hann"],
                         capsys)

@@ -230,6 +230,14 @@ def test_markup_in_serials_figures_and_units_is_printed_as_text(
         assert cli.main(argv) == 0, argv
         screen = capsys.readouterr().out
         assert "[/]" in screen or "[/bold]" in screen, argv
+    # the batch's own screen: station and operator as typed, shown as text
+    console, buf = quiet_console()
+    summary = run_batch(
+        procedure, _bench, station="[/st]", operator="[/]", out_dir=tmp_path / "b",
+        index_url=None, input_stream=io.StringIO("LW-0005\n\n"), console=console,
+        run_one=AnalyticBoardRunner(procedure, gains=GAINS),
+    )
+    assert summary.failed == 1 and "[/st]" in buf.getvalue() and "operator   [/]" in buf.getvalue()
 
 
 def test_index_add_marks_retests_and_reads_station(scaffold_files, tmp_path: Path, capsys) -> None:

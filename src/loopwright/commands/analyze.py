@@ -12,6 +12,7 @@ import sys
 from typing import Any
 
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from loopwright.analysis import FrequencyResponse, LoopFigures, analyze_loop
@@ -64,7 +65,7 @@ def print_figures(figures: LoopFigures, name: str, console: Console) -> None:
     """Print ``figures`` as readable tables on ``console``."""
     low, high = figures.frequency_range_hz
     console.print(
-        f"[bold]{name}[/bold]: {figures.points} points, {low:g} to {high:g} Hz, "
+        f"[bold]{escape(name)}[/bold]: {figures.points} points, {low:g} to {high:g} Hz, "
         f"sign {figures.sign:+d}, interpolation {figures.interpolation} "
         f"({figures.interpolation_note})"
     )

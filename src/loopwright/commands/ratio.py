@@ -287,12 +287,13 @@ def _all_numbers(cells: list[str]) -> bool:
 
 def _print_table(point: PointEstimate, path: Path, record: TwoChannelRecord) -> None:
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
 
     console = Console()
     n = record.reference_v.size
     console.print(
-        f"[bold]{path}[/bold]: {n} samples at {record.sample_rate_hz:.6g} Hz, "
+        f"[bold]{escape(str(path))}[/bold]: {n} samples at {record.sample_rate_hz:.6g} Hz, "
         f"estimator {point.method}"
     )
     summary = Table(show_header=True, header_style="bold")

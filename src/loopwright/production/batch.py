@@ -141,11 +141,11 @@ def verdict_panel(result: BoardResult) -> Panel:
             table.add_column(name, justify="left" if name in ("limit", "unit") else "right")
         for lim in result.failed_limits:
             table.add_row(
-                str(lim.get("name") or lim.get("figure")),
+                Text(str(lim.get("name") or lim.get("figure"))),
                 _fmt(lim.get("value")),
                 _fmt(lim.get("min")),
                 _fmt(lim.get("max")),
-                str(lim.get("unit") or ""),
+                Text(str(lim.get("unit") or "")),
             )
         parts.append(table)
     if result.message:
@@ -255,9 +255,11 @@ def run_batch(
     try:
         console.print(
             Panel(
-                f"procedure  {procedure_path}\nbench      {bench_path}\n"
-                f"station    {station}\noperator   {operator or '-'}\n"
-                f"output     {out}\nindex      {index.where}",
+                Text(  # paths and names as typed: text, never markup
+                    f"procedure  {procedure_path}\nbench      {bench_path}\n"
+                    f"station    {station}\noperator   {operator or '-'}\n"
+                    f"output     {out}\nindex      {index.where}"
+                ),
                 title="batch",
             )
         )
@@ -303,7 +305,8 @@ def run_batch(
     console.print(
         f"Batch ended ({ended_by}): {len(boards)} boards, {summary.passed} pass, "
         f"{summary.failed} fail, {summary.errors} error, {summary.retests} retests. "
-        f"Record: {record_path}"
+        f"Record: {record_path}",
+        markup=False,
     )
     return summary
 
