@@ -242,3 +242,19 @@ def test_plan_the_instruments_cannot_do_is_refused_before_output(tmp_path, start
     assert f"{procedure}:5: steps[0]: amplitude_vpp = 0.0001" in err
     assert not server.bench.generator.output_on
     assert "OUTP1 ON" not in (next((tmp_path / "runs").iterdir()) / "traffic.log").read_text()
+
+
+def test_channel_the_scope_lacks_is_refused_before_output(tmp_path, start_sim_bench, capsys):
+    """channels.reference: 3 on a two-channel scope: exit 2 naming the bench line, no output."""
+    from loopwright.cli import main
+
+    server = start_sim_bench("rational", switch=None)
+    bench = hardware_style_bench(tmp_path, server.resources)
+    bench.write_text(bench.read_text() + "channels:\n  reference: 3\n  response: 2\n")
+    code = main(["run", str(slow_procedure(tmp_path, count=4)), "--bench", str(bench),
+                 "--out", str(tmp_path / "runs"), "--yes", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert f"{bench}:9: channels.reference: channel must be one of [1, 2], got 3" in err
+    assert not server.bench.generator.output_on
+    assert "OUTP1 ON" not in (next((tmp_path / "runs").iterdir()) / "traffic.log").read_text()

@@ -329,3 +329,15 @@ def test_example_files_validate(path: Path):
             break
     else:
         pytest.fail(f"no shipped simulated bench accepts {path.name}: {refusals}")
+
+
+def test_negative_simulated_seed_is_refused_at_load(tmp_path):
+    """numpy refuses a negative seed; the bench file does first, naming its line."""
+    from loopwright.errors import InputError
+    from loopwright.procedure.schema import load_bench
+
+    path = tmp_path / "bench.yaml"
+    path.write_text("simulated:\n  dut: rational\n  seed: -1\n"
+                    "max_amplitude_vpp: 1.0\nmax_frequency_hz: 1.0e6\n")
+    with pytest.raises(InputError, match=r"bench.yaml:3: simulated.seed: must be greater"):
+        load_bench(path)

@@ -25,6 +25,7 @@ from rich.markup import escape
 
 from loopwright.dsp import fit_sine_4p
 from loopwright.errors import (
+    DriverError,
     EstimationError,
     InputError,
     InstrumentError,
@@ -635,9 +636,11 @@ def run_procedure(procedure_path: str | Path, bench_path: str | Path,
 def check_feasible(procedure: Procedure, connection: BenchConnection) -> None:
     """Refuse, before any output, a plan these instruments cannot carry out.
 
-    Every planned frequency and amplitude of every sweep and calibration is checked
-    against the generator driver's limits, and every frequency against what the scope
-    can record (enough cycles and samples per cycle); the first problem names the step.
+    The bench's reference and response channels are checked against the scope
+    driver's channels; every planned frequency and amplitude of every sweep and
+    calibration against the generator driver's limits, and every frequency against
+    what the scope can record (enough cycles and samples per cycle); the first problem
+    names the bench field or the step.
 
     Raises
     ------
@@ -645,6 +648,18 @@ def check_feasible(procedure: Procedure, connection: BenchConnection) -> None:
         A planned value is outside what the instruments can do (exit code 2).
     """
     generator, scope = connection.generator, connection.scope
+    channel_text = getattr(scope, "channel", None)
+    if channel_text is not None:
+        bench = connection.bench
+        for name in ("reference", "response"):
+            try:
+                channel_text(getattr(bench.channels, name))
+            except DriverError as exc:
+                message = (f"{exc} (scope driver"
+                           f" {connection.instruments['scope']['driver']})")
+                if bench.source is not None:
+                    raise bench.source.error(("channels", name), message) from exc
+                raise InputError(message, field=f"channels.{name}") from exc
     max_rate = _scope_limit(scope, "sample_rate_hz", 1e9)
     max_length = int(_scope_limit(scope, "points", 1_000_000))
     limit = getattr(generator, "limit", None)

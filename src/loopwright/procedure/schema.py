@@ -187,7 +187,7 @@ class SimulatedBenchEntry(_Model):
 
     dut: NameText = Field(description="a registered DUT model name or a DUT YAML file")
     noise_v_rms: NonNegativeNumber = 0.0
-    seed: Count | None = None
+    seed: Annotated[Count, Field(ge=0)] | None = None
     real_time: bool = Field(False, description="wait out settling and record times")
     transport: Literal["tcp", "in_process"] = Field(
         "tcp", description="loopback TCP through pyvisa-py, or the in-process backend")
