@@ -196,7 +196,9 @@ def build_model(frequency_hz: ArrayLike, h: ArrayLike) -> ResponseModel:
     -------
     ResponseModel
         A rational AAA model when it predicts held-out points within
-        :data:`HELD_OUT_TOLERANCE` and has no spurious pole; otherwise PCHIP in log f.
+        :data:`HELD_OUT_TOLERANCE` (or within :data:`HELD_OUT_LOOSE` and
+        :data:`RATIONAL_ADVANTAGE` times better than PCHIP) and has no spurious pole;
+        otherwise PCHIP in log f.
     """
     f = np.array(frequency_hz, dtype=np.float64)
     gain = np.array(h, dtype=np.complex128)

@@ -9,6 +9,7 @@ import sys
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
+    """Add the ``batch`` command."""
     parser = subparsers.add_parser(
         "batch",
         help="run a procedure on board after board (serial in, PASS/FAIL out)",
@@ -37,6 +38,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    """Run the batch on serials read from standard input; exit 1 if a board erred."""
     from rich.console import Console
 
     from loopwright.errors import RunError

@@ -8,6 +8,7 @@ from datetime import datetime
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
+    """Add the ``index`` command and its actions."""
     parser = subparsers.add_parser(
         "index",
         help="query the results index (list, show, failures) or add run folders to it",
@@ -72,6 +73,7 @@ def _when(value) -> str:
 
 
 def run_list(args: argparse.Namespace) -> int:
+    """Print the runs of the index, newest first."""
     from rich.console import Console
     from rich.table import Table
 
@@ -104,6 +106,7 @@ def run_list(args: argparse.Namespace) -> int:
 
 
 def run_show(args: argparse.Namespace) -> int:
+    """Print one run and its limited figures."""
     from rich.console import Console
     from rich.table import Table
 
@@ -137,6 +140,7 @@ def run_show(args: argparse.Namespace) -> int:
 
 
 def run_failures(args: argparse.Namespace) -> int:
+    """Print every failed limit with its run."""
     from rich.console import Console
     from rich.table import Table
 
@@ -163,6 +167,7 @@ def run_failures(args: argparse.Namespace) -> int:
 
 
 def run_add(args: argparse.Namespace) -> int:
+    """Add run folders to the index and print their ids."""
     from loopwright.production.index import index_run_folders, open_index
 
     with open_index(args.index) as index:

@@ -7,6 +7,7 @@ import json
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
+    """Add the ``stats`` command."""
     parser = subparsers.add_parser(
         "stats",
         help="population statistics and Cpk of limited figures from a results index",
@@ -32,6 +33,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    """Print (or write as JSON and PNG) the statistics of every limited figure."""
     from rich.console import Console
     from rich.markup import escape
 
