@@ -149,6 +149,33 @@ def test_closed_loop_check_finds_free_running_oscillation(tmp_path):
         assert data["response_v"].size > 10
 
 
+def test_closed_loop_record_gets_a_timeout_that_covers_it(tmp_path, monkeypatch):
+    """A closed-loop record far longer than the last sweep point's (2000 cycles against
+    10) is waited for in full: every acquisition's timeout exceeds the bench's I/O
+    timeout by at least the record's own duration."""
+    from loopwright.instruments.template_roles import TemplateScope
+
+    seen = []
+    real = TemplateScope.acquire
+
+    def spy(self, channels, timeout_s=10.0):
+        capture = real(self, channels, timeout_s=timeout_s)
+        seen.append((timeout_s, capture.record_length / capture.sample_rate_hz))
+        return capture
+
+    monkeypatch.setattr(TemplateScope, "acquire", spy)
+    extra = ("  - kind: closed_loop_check\n    switch: relay\n    settle_s: 0.05\n"
+             "    record_cycles: 2000\n")
+    procedure = write_procedure(tmp_path, 1.4e6, 1.6e6, points_per_decade=20,
+                                amplitude_vpp=0.02, extra=extra)
+    bench = write_bench(tmp_path, "lc_oscillator")
+    run(tmp_path, procedure, bench)
+    io_timeout_s = 5.0  # the bench file's default timeout_s
+    assert max(duration for _, duration in seen) > 100 * min(d for _, d in seen)
+    for timeout_s, duration_s in seen:
+        assert timeout_s - io_timeout_s >= duration_s, (timeout_s, duration_s)
+
+
 def test_in_process_transport_gives_the_same_points(tmp_path):
     """The in-process pyvisa backend runs the same driver code as TCP."""
     procedure = write_procedure(tmp_path, 200.0, 2e4, points_per_decade=5)

@@ -466,6 +466,8 @@ class Runner:
         measurer = self.measurer or self._measurer(
             SweepStep(kind="sweep", frequencies_hz=[expected_hz], amplitude_vpp=0.01),
             0.01)
+        # this record may be far longer than the last sweep point's: wait for all of it
+        measurer.timeout_s = self.bench.timeout_s + 3.0 * length / rate
         capture, clipped = measurer.acquire_ranged(autorange=True)
         volts = capture.volts[self.response_channel]
         fs = capture.sample_rate_hz
