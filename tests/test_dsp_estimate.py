@@ -204,6 +204,12 @@ def test_unknown_method_option_and_window():
         estimate_point(GOOD, GOOD, FS, 10000.0, method="dft", window="triangle")
     with pytest.raises(EstimationError, match="segments"):
         estimate_point(GOOD, GOOD, FS, 10000.0, method="xcorr", segments=9)
+    for method, option in (("sinefit", {"harmonics": 0}), ("dft", {"harmonics": -1}),
+                           ("xcorr", {"harmonics": 1.5}), ("sinefit", {"harmonics": True}),
+                           ("sinefit", {"max_offset_ppm": -1.0}),
+                           ("sinefit", {"max_offset_ppm": float("nan")})):
+        with pytest.raises(EstimationError, match=next(iter(option))):
+            estimate_point(GOOD, GOOD, FS, 10000.0, method=method, **option)
 
 
 def test_no_tone_near_the_nominal_frequency_is_refused_or_reported():

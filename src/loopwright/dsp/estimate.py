@@ -8,6 +8,8 @@ each name to its function ``f(reference_v, response_v, sample_rate_hz, frequency
 
 from __future__ import annotations
 
+import math
+import numbers
 from collections.abc import Callable
 from typing import Any
 
@@ -76,9 +78,26 @@ def estimate_point(
         names = ", ".join(sorted(ESTIMATORS))
         raise EstimationError(f"unknown estimator {method!r}; choose one of: {names}") from None
     ref, resp = check_records(reference_v, response_v, sample_rate_hz, frequency_hz)
+    _check_options(method, options)
     try:
         return estimator(ref, resp, float(sample_rate_hz), float(frequency_hz), **options)
     except TypeError as exc:
         if "unexpected keyword argument" in str(exc):
             raise EstimationError(f"estimator {method!r}: {exc}") from exc
         raise
+
+
+def _check_options(method: str, options: dict[str, Any]) -> None:
+    """Refuse option values no estimator can use (instead of clamping them silently)."""
+    harmonics = options.get("harmonics", 1)
+    if isinstance(harmonics, bool) or not isinstance(harmonics, numbers.Integral) \
+            or harmonics < 1:
+        raise EstimationError(
+            f"estimator {method!r}: harmonics must be a whole number >= 1 (1 = the "
+            f"fundamental alone), got {harmonics!r}")
+    offset_ppm = options.get("max_offset_ppm", 0.0)
+    if not (isinstance(offset_ppm, numbers.Real) and math.isfinite(offset_ppm)
+            and offset_ppm >= 0):
+        raise EstimationError(
+            f"estimator {method!r}: max_offset_ppm must be a finite number >= 0, "
+            f"got {offset_ppm!r}")

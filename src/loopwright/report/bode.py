@@ -39,7 +39,6 @@ FREQUENCY_MASK_HALF_DB = 3.0
 FREQUENCY_MASK_HALF_DEG = 20.0
 #: Uncertainty bands are drawn at ± this many standard deviations.
 BAND_SIGMAS = 2.0
-FLAG_NAMES = tuple(palette.FLAG_STYLES)
 
 _RC = {
     "font.size": 9,
