@@ -431,7 +431,7 @@ class MeasuredResponseDUT(DUTModel):
             run = load_run(params.run)
             response = run.response_for(params.step)
         except LoopwrightError as exc:
-            err = ValueError(f"cannot replay {params.run}: {exc}")
+            err = ValueError(f"cannot replay the run: {exc}")
             err.field = "run"  # type: ignore[attr-defined]
             raise err from exc
         self.run_path = Path(params.run)
