@@ -258,3 +258,28 @@ def test_channel_the_scope_lacks_is_refused_before_output(tmp_path, start_sim_be
     assert f"{bench}:9: channels.reference: channel must be one of [1, 2], got 3" in err
     assert not server.bench.generator.output_on
     assert "OUTP1 ON" not in (next((tmp_path / "runs").iterdir()) / "traffic.log").read_text()
+
+
+def test_profile_corner_a_refined_point_could_reach_is_refused_before_output(
+        tmp_path, start_sim_bench, capsys):
+    """A refined sweep whose profile dips below the driver's 0.001 Vpp between planned
+    points: exit 2 before any output (a refined point there would be refused mid-run)."""
+    from loopwright.cli import main
+
+    server = start_sim_bench("rational", switch=None)
+    procedure = tmp_path / "dip.yaml"
+    procedure.write_text(
+        "name: dip\nsign: 1\nmethod: broken_loop\nsteps:\n"
+        "  - kind: sweep\n    frequencies_hz: [1000, 10000]\n"
+        "    amplitude_profile:\n"
+        "      - {frequency_hz: 100, amplitude_vpp: 0.01}\n"
+        "      - {frequency_hz: 3000, amplitude_vpp: 0.0005}\n"
+        "      - {frequency_hz: 100000, amplitude_vpp: 0.01}\n"
+        "    refine: {max_extra_points: 4}\n")
+    code = main(["run", str(procedure), "--bench",
+                 str(hardware_style_bench(tmp_path, server.resources)),
+                 "--out", str(tmp_path / "runs"), "--yes", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert "amplitude_vpp = 0.0005 is outside what the generator" in err
+    assert not server.bench.generator.output_on

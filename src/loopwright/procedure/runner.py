@@ -640,7 +640,8 @@ def check_feasible(procedure: Procedure, connection: BenchConnection) -> None:
 
     The bench's reference and response channels are checked against the scope
     driver's channels; every planned frequency and amplitude of every sweep and
-    calibration against the generator driver's limits, and every frequency against
+    calibration (and, for a refined sweep, the amplitude at each profile corner inside
+    the plan) against the generator driver's limits, and every frequency against
     what the scope can record (enough cycles and samples per cycle); the first problem
     names the bench field or the step.
 
@@ -675,7 +676,15 @@ def check_feasible(procedure: Procedure, connection: BenchConnection) -> None:
                 return procedure.source.error(("steps", index), message)
             return InputError(message, field=f"steps[{index}]")
 
-        for frequency_hz in frequency_plan(step):
+        planned = frequency_plan(step)
+        profile = getattr(step, "amplitude_profile", None)
+        if getattr(step, "refine", None) is not None and profile is not None and planned.size:
+            # refinement adds points between planned ones; an amplitude corner there is
+            # the largest (or smallest) amplitude such a point can get
+            corners = np.array([p.frequency_hz for p in profile], dtype=float)
+            inside = corners[(corners > planned[0]) & (corners < planned[-1])]
+            planned = np.union1d(planned, inside)
+        for frequency_hz in planned:
             f = float(frequency_hz)
             try:
                 record_settings(step, f, max_rate, max_length)
