@@ -283,3 +283,29 @@ def test_profile_corner_a_refined_point_could_reach_is_refused_before_output(
     assert code == 2, err
     assert "amplitude_vpp = 0.0005 is outside what the generator" in err
     assert not server.bench.generator.output_on
+
+
+def test_output_is_off_while_the_operator_answers_a_prompt(tmp_path, start_sim_bench):
+    """sweep, prompt, sweep: no stimulus while the operator handles the board; the second
+    sweep switches the output on again and measures every point."""
+    server = start_sim_bench("rational", switch=None)
+    sweep = ("  - kind: sweep\n    frequencies_hz: [500, 1000]\n    amplitude_vpp: 0.2\n"
+             "    settle_cycles: 2\n    cycles_per_record: 10\n    min_samples: 1000\n")
+    procedure = tmp_path / "prompted.yaml"
+    procedure.write_text("name: prompted\nsign: 1\nmethod: broken_loop\nsteps:\n" + sweep
+                         + "  - kind: prompt\n    text: Move the probe.\n" + sweep)
+    seen = []
+
+    def answer(_text: str) -> str:
+        seen.append(server.bench.generator.output_on)
+        return ""
+
+    outcome = run_procedure(procedure, hardware_style_bench(tmp_path, server.resources),
+                            RunOptions(out_dir=tmp_path / "runs", quiet=True,
+                                       assume_yes=True, render_report=False,
+                                       input_fn=answer))
+    assert outcome.status == "complete"
+    assert seen == [False]
+    points = pd.read_csv(outcome.run_dir / "points.csv")
+    assert list(points["step"]) == [0, 0, 2, 2]
+    assert not server.bench.generator.output_on

@@ -411,6 +411,11 @@ class Runner:
         if self.options.resume is not None and self.folder.done_points and any(
                 int(p["step"]) > index for p in self.folder.done_points):
             return  # the steps after this prompt already ran before the interruption
+        if self._generator_frequency_hz is not None:
+            # the operator may touch the board: no stimulus while they do; the next
+            # point sets the generator up afresh and switches it on again
+            self._set_output(False)
+            self._generator_frequency_hz = None
         self.console.print(f"[bold]operator:[/] {escape(text)}")
         try:
             self.options.input_fn("Press Enter to continue ")
