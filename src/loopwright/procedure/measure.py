@@ -191,8 +191,19 @@ class PointMeasurer:
         until_phase_std_deg
             When given, keep acquiring until the phase std of the mean falls below
             it, or ``max_averages`` records.
+        max_averages
+            Most records when averaging until ``until_phase_std_deg``.
+        autorange
+            Adjust the channels' scales and offsets on the first record.
         correction
             Channel mismatch at a frequency (from calibrate_channels); H is divided by it.
+        keep_captures
+            Keep every record in :attr:`PointResult.captures`.
+
+        Returns
+        -------
+        PointResult
+            The averaged ratio, its spread, per-channel figures and flags.
         """
         estimates = []
         captures: list[Capture] = []

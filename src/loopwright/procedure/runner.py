@@ -93,6 +93,8 @@ class RunOptions:
         Write report.html and the Bode plot at the end.
     manifest_extra
         Extra manifest fields (``replay_of``, ``reanalysis_of`` ...).
+    extra_driver_dirs
+        Folders searched for driver files before the shipped ones (``--drivers``).
     """
 
     out_dir: Path = Path("runs")
@@ -110,7 +112,21 @@ class RunOptions:
 
 @dataclass
 class RunOutcome:
-    """What a finished (or stopped) run left behind."""
+    """What a finished (or stopped) run left behind.
+
+    Attributes
+    ----------
+    run_dir
+        The run folder.
+    status
+        ``complete``, ``aborted`` or ``failed`` (as in the manifest).
+    reason
+        Why the run did not complete (None when it did).
+    summary
+        summary.json as written, or None when the run stopped before it.
+    output_off
+        True when the generator output was read back off at the end.
+    """
 
     run_dir: Path
     status: str
