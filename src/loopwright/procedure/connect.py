@@ -19,6 +19,12 @@ from loopwright.instruments.roles import Generator, LoopSwitch, Scope
 from loopwright.procedure.schema import Bench
 
 
+def bench_caps(bench: Bench) -> GeneratorCaps:
+    """The bench file's caps, as the generator driver enforces them."""
+    return GeneratorCaps(max_amplitude_vpp=bench.max_amplitude_vpp,
+                         max_frequency_hz=bench.max_frequency_hz)
+
+
 @dataclass
 class BenchConnection:
     """The open instruments of one run.
@@ -50,8 +56,7 @@ class BenchConnection:
 
     def caps(self) -> GeneratorCaps:
         """The bench caps the generator driver enforces."""
-        return GeneratorCaps(max_amplitude_vpp=self.bench.max_amplitude_vpp,
-                             max_frequency_hz=self.bench.max_frequency_hz)
+        return bench_caps(self.bench)
 
     def reopen(self, role: str) -> Any:
         """Drop one instrument's session and open it afresh (after a lost connection).
@@ -146,8 +151,7 @@ def connect_bench(bench: Bench, traffic_log: TrafficLog | str | Path | None = No
             if entry is not None:
                 resources[role] = entry.resource
                 drivers[role] = entry.driver
-    caps = GeneratorCaps(max_amplitude_vpp=bench.max_amplitude_vpp,
-                         max_frequency_hz=bench.max_frequency_hz)
+    caps = bench_caps(bench)
     opened: dict[str, Any] = {}
     try:
         for role in ("generator", "scope", "switch"):
