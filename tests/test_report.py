@@ -515,6 +515,11 @@ def test_unwritable_report_file_is_one_line(amplifier_run, tmp_path, capsys):
     ("no_points", "holds no points"),
     ("bad_json", "summary.json:3: not valid JSON"),
     ("missing_column", "points.csv:1: the header is not"),
+    ("analysis_text", "summary.json: analysis: expected an object"),
+    ("crossing_number", "summary.json: analysis.gain_crossovers[0]: expected an object"),
+    ("limits_object", "summary.json: limits: expected a list"),
+    ("closed_loop_number", "summary.json: closed_loop: expected an object"),
+    ("instruments_list", "manifest.json: instruments: expected an object"),
 ])
 def test_bad_run_folder_is_one_line_exit_2(breakage, expected, amplifier_run, tmp_path,
                                            capsys):
@@ -531,6 +536,22 @@ def test_bad_run_folder_is_one_line_exit_2(breakage, expected, amplifier_run, tm
     elif breakage == "missing_column":
         table = pd.read_csv(run / "points.csv").drop(columns=["phase_deg"])
         table.to_csv(run / "points.csv", index=False)
+    elif breakage in ("analysis_text", "crossing_number", "limits_object",
+                      "closed_loop_number", "instruments_list"):
+        # hand-edited JSON of the right syntax but the wrong shape
+        name = "manifest.json" if breakage == "instruments_list" else "summary.json"
+        document = json.loads((run / name).read_text())
+        if breakage == "analysis_text":
+            document["analysis"] = "fine"
+        elif breakage == "crossing_number":
+            document["analysis"]["gain_crossovers"] = [1.0e4]
+        elif breakage == "limits_object":
+            document["limits"] = {"pm": 45}
+        elif breakage == "closed_loop_number":
+            document["closed_loop"] = 5
+        else:
+            document["instruments"] = ["generator"]
+        (run / name).write_text(json.dumps(document))
     for command in (["report", str(run)], ["export", str(run), "--format", "csv"],
                     ["compare", str(amplifier_run), str(run), "--out",
                      str(tmp_path / "c.html")]):

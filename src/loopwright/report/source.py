@@ -80,6 +80,40 @@ def read_closed_loop(path: Path) -> tuple[np.ndarray, np.ndarray] | tuple[None, 
     return time_s, response_v
 
 
+def _expect(value: Any, kind: type, path: Path, field: str) -> None:
+    """``value`` is None or a ``kind``; otherwise InputError naming file and field."""
+    if value is not None and not isinstance(value, kind):
+        raise InputError(f"expected {'an object' if kind is dict else 'a list'}, got "
+                         f"{type(value).__name__}", path=path, field=field)
+
+
+def _expect_objects(value: Any, path: Path, field: str) -> None:
+    """``value`` is None or a list of objects (JSON dicts)."""
+    _expect(value, list, path, field)
+    for i, item in enumerate(value or []):
+        _expect(item, dict, path, f"{field}[{i}]")
+        if item is None:
+            raise InputError("expected an object, got null", path=path, field=f"{field}[{i}]")
+
+
+def check_shapes(summary: dict[str, Any], manifest: dict[str, Any], folder: Path) -> None:
+    """Refuse a hand-edited summary.json or manifest.json whose parts the report walks
+    (analysis, its crossing and resonance lists, limits, closed_loop, instruments)
+    have the wrong JSON type, with an :class:`InputError` naming the file and field.
+    Values themselves may be anything: the report shows what is not a number as text."""
+    where = folder / "summary.json"
+    analysis = summary.get("analysis")
+    _expect(analysis, dict, where, "analysis")
+    for key in ("gain_crossovers", "zero_phase_crossings", "resonances"):
+        _expect_objects((analysis or {}).get(key), where, f"analysis.{key}")
+    _expect_objects(summary.get("limits"), where, "limits")
+    _expect(summary.get("closed_loop"), dict, where, "closed_loop")
+    instruments = manifest.get("instruments")
+    _expect(instruments, dict, folder / "manifest.json", "instruments")
+    for role, info in (instruments or {}).items():
+        _expect(info, dict, folder / "manifest.json", f"instruments.{role}")
+
+
 def report_input(run_dir: str | Path) -> ReportInput:
     """Read everything the report of ``run_dir`` shows.
 
@@ -93,6 +127,7 @@ def report_input(run_dir: str | Path) -> ReportInput:
     if run.points.empty:
         raise InputError("the run holds no points (points.csv is missing or empty)",
                          path=path / "points.csv")
+    check_shapes(run.summary or {}, run.manifest or {}, path)
     points = run.points.sort_values("frequency_hz", kind="stable").reset_index(drop=True)
     calibration = run.calibration
     time_s, response_v = read_closed_loop(path / "closed_loop.npz")
