@@ -134,3 +134,12 @@ def test_closed_session_refuses(server):
     session.close()
     with pytest.raises(ConnectionLost, match="closed"):
         session.query("FAST?")
+
+
+@pytest.mark.parametrize("timeout_s", [0.0, -1.0, float("nan"), float("inf")])
+def test_bad_timeout_is_our_input_error(timeout_s):
+    """Refused before anything is opened (the VISA layer takes finite milliseconds)."""
+    from loopwright.errors import InputError
+
+    with pytest.raises(InputError, match="timeout_s must be positive and finite"):
+        Session("TCPIP::127.0.0.1::1::SOCKET", timeout_s=timeout_s)

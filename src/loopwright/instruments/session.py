@@ -32,7 +32,13 @@ import numpy as np
 import pyvisa
 from pyvisa.highlevel import VisaLibraryBase
 
-from loopwright.errors import ConnectionLost, InstrumentError, InstrumentTimeout, SCPIError
+from loopwright.errors import (
+    ConnectionLost,
+    InputError,
+    InstrumentError,
+    InstrumentTimeout,
+    SCPIError,
+)
 from loopwright.instruments.block import BlockFormatError, payload_to_samples, read_block
 
 #: VI_ERROR_TMO: the VISA status code of a read timeout.
@@ -191,16 +197,14 @@ class Session:
                  timeout_s: float = 5.0,
                  traffic_log: TrafficLog | str | Path | IO[str] | None = None,
                  error_query: str | None = None, open_now: bool = True) -> None:
-        if not timeout_s > 0:
-            raise ValueError(f"timeout_s must be positive, got {timeout_s!r}")
+        self._resource: Any = None
+        self.timeout_s = timeout_s  # checked by the setter before anything is opened
         self.resource_name = resource
         self.backend = backend
         self.error_query = error_query
         self.identity = ""
-        self._timeout_s = float(timeout_s)
         self._log = as_traffic_log(traffic_log)
         self._owns_log = self._log is not None and not isinstance(traffic_log, TrafficLog)
-        self._resource: Any = None
         self._needs_sync = False
         if open_now:
             self.open()
@@ -223,8 +227,9 @@ class Session:
 
     @timeout_s.setter
     def timeout_s(self, value: float) -> None:
-        if not value > 0:
-            raise ValueError(f"timeout_s must be positive, got {value!r}")
+        if not (value > 0 and np.isfinite(value)):
+            # InputError is a ValueError: callers that catch ValueError still do
+            raise InputError(f"timeout_s must be positive and finite, got {value!r}")
         self._timeout_s = float(value)
         if self._resource is not None:
             self._resource.timeout = self._timeout_s * 1000.0
