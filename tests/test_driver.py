@@ -364,6 +364,14 @@ def test_python_driver_module_class(scpi_recorder, tmp_path, monkeypatch):
     sys.modules.pop("odd_module", None)
 
 
+def test_python_driver_that_is_not_a_class_is_our_error(scpi_recorder, tmp_path):
+    """python: module:function (here os:getcwd) ends in DriverError, not a TypeError."""
+    scpi_recorder.identity = "loopwright,odd,0,0"
+    with pytest.raises(DriverError, match="'os:getcwd' is not a class"):
+        open_instrument(scpi_recorder.resource, "generator",
+                        driver=_python_driver(tmp_path, "os:getcwd"), timeout_s=2.0)
+
+
 # ------------------------------------------------------------------- schema
 def test_format_number_formats_and_limits():
     from loopwright.instruments.driver_schema import NumberSpec

@@ -228,10 +228,15 @@ def resolve_class(spec: DriverSpec) -> type:
         raise DriverError(f"driver {spec.name!r}: cannot import {module_name!r}: {exc}"
                           ) from exc
     try:
-        return getattr(module, class_name)
+        found = getattr(module, class_name)
     except AttributeError:
         raise DriverError(f"driver {spec.name!r}: module {module_name!r} has no"
                           f" {class_name!r}") from None
+    if not isinstance(found, type):
+        raise DriverError(f"driver {spec.name!r}: {spec.python!r} is not a class (a driver"
+                          " class subclasses TemplateGenerator, TemplateScope or"
+                          " TemplateSwitch)")
+    return found
 
 
 def open_instrument(resource: str, role: str, driver: str | Path | None = None,
