@@ -85,7 +85,8 @@ class RunProgress:
 
     def point(self, index: int, frequency_hz: float, gain_db: float, phase_deg: float,
               flags: list[str]) -> None:
-        """One point is on disk."""
+        """One point was measured and stored (``index`` -1: a calibration point, which
+        goes to calibration.csv at the end of its step)."""
         flag_text = ",".join(flags) if flags else "ok"
         text = (f"{format_frequency(frequency_hz):>11}  {gain_db:+8.2f} dB  "
                 f"{phase_deg:+8.2f} deg  {flag_text}")
@@ -95,7 +96,7 @@ class RunProgress:
             self.console.print(f"  point {index:5d} {text}", highlight=False)
 
     def message(self, text: str) -> None:
-        """A line for the operator (shown even in quiet mode when it is a warning)."""
+        """A line for the operator, hidden in quiet mode (use :meth:`warn` for a warning)."""
         if not self.quiet:
             self.console.print(text, highlight=False, markup=False)
 
