@@ -358,6 +358,20 @@ def test_missing_files_and_bad_index_are_our_errors(scaffold_files, tmp_path: Pa
         assert "is not a database" in err and err.count("\n") == 1
 
 
+def test_batch_command_refuses_bad_files_before_the_first_serial(
+        tmp_path: Path, monkeypatch, capsys) -> None:
+    # files that exist but are no procedure/bench: exit 2 at once, nothing made
+    (tmp_path / "p.yaml").write_text("name: [unclosed\n")
+    (tmp_path / "b.yaml").write_text("generator: {}\n")
+    monkeypatch.setattr("sys.stdin", io.StringIO("LW-1\n\n"))
+    out = tmp_path / "out"
+    assert cli.main(["batch", str(tmp_path / "p.yaml"), "--bench", str(tmp_path / "b.yaml"),
+                     "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "p.yaml:2: not valid YAML" in err and err.count("\n") == 1
+    assert not out.exists()
+
+
 def test_malformed_summary_names_file_and_field(scaffold_files, tmp_path: Path, capsys) -> None:
     procedure, _bench = scaffold_files
     run_dir, _ = AnalyticBoardRunner(procedure)("Z-1", retest=False, out_dir=tmp_path / "r")

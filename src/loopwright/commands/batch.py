@@ -49,6 +49,11 @@ def run(args: argparse.Namespace) -> int:
     except ImportError as exc:  # a partial install: say so in one line
         raise RunError(f"the procedure runner cannot be loaded: {exc}") from exc
 
+    from loopwright.procedure.schema import check_against_bench, load_bench, load_procedure
+
+    # Bad files are refused before the first serial is asked for (exit 2), not at
+    # each board as an error line.
+    check_against_bench(load_procedure(args.procedure), load_bench(args.bench))
     station = args.station or socket.gethostname()
     run_one = functools.partial(
         _run_one,
