@@ -214,6 +214,11 @@ def test_index_cli_queries(batch, capsys) -> None:
     assert capsys.readouterr().out.count("already indexed") == len(folders)
 
 
+def _cli_out(capsys, argv: list[str]) -> str:
+    assert cli.main(argv) == 0, argv
+    return capsys.readouterr().out
+
+
 def test_markup_in_serials_figures_and_units_is_printed_as_text(
         scaffold_files, tmp_path: Path, capsys) -> None:
     # a scanned serial "[/]" or a hand-edited summary.json must not reach rich as markup
@@ -225,8 +230,9 @@ def test_markup_in_serials_figures_and_units_is_printed_as_text(
     idx = str(tmp_path / "idx.sqlite")
     assert cli.main(["index", "add", "--index", idx, str(run_dir)]) == 0
     capsys.readouterr()
+    run_id = json.loads(_cli_out(capsys, ["index", "list", "--index", idx, "--json"]))[0]["run_id"]
     for argv in (["index", "list", "--index", idx], ["index", "failures", "--index", idx],
-                 ["index", "show", "", "--index", idx], ["stats", idx]):
+                 ["index", "show", run_id[:6], "--index", idx], ["stats", idx]):
         assert cli.main(argv) == 0, argv
         screen = capsys.readouterr().out
         assert "[/]" in screen or "[/bold]" in screen, argv
@@ -342,6 +348,8 @@ def test_missing_files_and_bad_index_are_our_errors(scaffold_files, tmp_path: Pa
     assert "127.0.0.1" in err and "hunter2" not in err and err.count("\n") == 1
     assert cli.main(["stats", str(tmp_path / "empty")]) == 2
     assert "no results index" in capsys.readouterr().err
+    assert cli.main(["index", "show", " ", "--index", str(tmp_path)]) == 2
+    assert "RUN_ID" in capsys.readouterr().err
     assert cli.main(["stats", str(tmp_path), "--since", "yesterday"]) == 2
     assert "--since" in capsys.readouterr().err
     # a file that is not an index

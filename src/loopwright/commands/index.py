@@ -113,6 +113,8 @@ def run_show(args: argparse.Namespace) -> int:
     from loopwright.errors import InputError
     from loopwright.production.index import open_index
 
+    if not args.run_id.strip():  # an empty prefix would match every run
+        raise InputError("give a run id (or a unique start of it)", field="RUN_ID")
     with open_index(args.index, create=False) as index:
         run = index.get_run(args.run_id)
         where = index.where
