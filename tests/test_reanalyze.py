@@ -212,3 +212,15 @@ def test_cli_reanalyze_bad_input(case, source, tmp_path, capsys) -> None:
     assert {"not_a_run": "not a run folder", "no_points": "no points",
             "no_captures": "keep_captures: true"}[case] in err
     assert not (tmp_path / "o").exists()
+
+
+def test_cli_reanalyze_damaged_capture(source, tmp_path, capsys) -> None:
+    """A truncated .npz (a damaged zip archive) is our one-line error, exit 2."""
+    target = tmp_path / "t"
+    shutil.copytree(source, target)
+    capture = target / "captures" / "point_00003.npz"
+    capture.write_bytes(capture.read_bytes()[:100])
+    assert main(["reanalyze", str(target), "--out", str(tmp_path / "o"), "--no-report"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("loopwright: error:") and "\n" not in err
+    assert f"{capture}: cannot read the capture" in err

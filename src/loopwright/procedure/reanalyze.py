@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import math
 import shutil
+import zipfile
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
@@ -90,7 +91,8 @@ def _read_capture(path: Path) -> dict[str, Any]:
         with np.load(path, allow_pickle=False) as data:
             out = {key: data[key] for key in ("reference_v", "response_v", "sample_rate_hz",
                                               "frequency_hz")}
-    except (OSError, ValueError, KeyError) as exc:
+    except (OSError, ValueError, KeyError, zipfile.BadZipFile) as exc:
+        # a truncated or overwritten .npz is a damaged zip archive
         raise InputError(f"cannot read the capture: {exc}", path=str(path)) from exc
     return out
 
