@@ -162,6 +162,9 @@ def test_sign_flip_analyses_minus_h(tmp_path, capsys) -> None:
     assert figures["sign"] == -1
     assert figures["phase_margin_deg"] == pytest.approx(32.6131, abs=1e-3)
     assert figures["gain_margin_db"] == pytest.approx(9.5424, abs=1e-3)
+    # a float sign from code is kept as the int the JSON and the table show
+    from_api = analyze_loop(FrequencyResponse.from_csv(path), sign=-1.0)
+    assert from_api.sign == -1 and isinstance(from_api.sign, int)
 
 
 # -- seeded random loops --------------------------------------------------------------

@@ -458,7 +458,7 @@ def analyze_loop(response: FrequencyResponse, sign: int = 1) -> LoopFigures:
     model = used.model()
     curve = _Curve(used, model)
     return LoopFigures(
-        sign=sign,
+        sign=int(sign),  # -1.0 or True arrive too: the JSON and the table print an int
         points=len(used),
         frequency_range_hz=(float(used.frequency_hz[0]), float(used.frequency_hz[-1])),
         interpolation=model.method,
