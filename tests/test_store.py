@@ -394,3 +394,19 @@ def test_float_columns_round_trip_exactly(tmp_path_factory, values):
     resumed = RunFolder.open_for_resume(folder.path)
     assert [p["gain_re"] for p in resumed.done_points] == values
     assert load_run(folder.path).points["gain_im"].tolist() == [-v for v in values]
+
+
+@pytest.mark.parametrize(("row", "message"), [
+    ("1000,0,0,abc,0", "not a number in the calibration"),
+    ("1000,0,0,0,0", "finite, non-zero mismatch"),
+    ("0,0,0,1,0", "positive frequencies"),
+    ("1000,0,0,nan,0", "finite, non-zero mismatch"),
+    (None, "positive frequencies"),
+], ids=["text", "zero-mismatch", "zero-hz", "nan", "no-rows"])
+def test_unusable_calibration_is_our_input_error(tmp_path, row, message):
+    """A mismatch of 0 would divide every later point by zero; text is no number."""
+    path = tmp_path / "calibration.csv"
+    header = "frequency_hz,mismatch_db,mismatch_deg,mismatch_re,mismatch_im\n"
+    path.write_text(header + (row + "\n" if row else ""))
+    with pytest.raises(InputError, match=message):
+        read_calibration(path)

@@ -111,7 +111,14 @@ def _dtype(column: str) -> str:
 
 
 def read_calibration(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
-    """calibration.csv -> (frequency_hz, complex mismatch), sorted by frequency."""
+    """calibration.csv -> (frequency_hz, complex mismatch), sorted by frequency.
+
+    Raises
+    ------
+    InputError
+        The file is missing, has other columns, a value that is not a number, no
+        rows, or a frequency or mismatch that cannot be used (<= 0 Hz, zero, NaN).
+    """
     target = Path(path)
     if target.is_dir():
         target = target / CALIBRATION_FILE
@@ -124,9 +131,19 @@ def read_calibration(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
     if list(frame.columns) != list(CALIBRATION_COLUMNS):
         raise InputError("unexpected columns; expected " + ",".join(CALIBRATION_COLUMNS),
                          path=target, line=1)
-    frame = frame.sort_values("frequency_hz")
-    mismatch = frame["mismatch_re"].to_numpy(float) + 1j * frame["mismatch_im"].to_numpy(float)
-    return frame["frequency_hz"].to_numpy(float), mismatch
+    try:
+        frame = frame.sort_values("frequency_hz")
+        frequency_hz = frame["frequency_hz"].to_numpy(float)
+        mismatch = (frame["mismatch_re"].to_numpy(float)
+                    + 1j * frame["mismatch_im"].to_numpy(float))
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"not a number in the calibration: {exc}", path=target) from exc
+    # a zero or missing mismatch would divide every later point by zero
+    if (frequency_hz.size == 0 or not np.all(np.isfinite(frequency_hz) & (frequency_hz > 0))
+            or not np.all(np.isfinite(mismatch) & (mismatch != 0))):
+        raise InputError("the calibration needs positive frequencies and finite, non-zero"
+                         " mismatch values on every row", path=target)
+    return frequency_hz, mismatch
 
 
 def mismatch_at(frequency_hz: Any, calibration_frequency_hz: np.ndarray,
