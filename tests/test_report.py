@@ -335,6 +335,18 @@ def _has_colour(image: np.ndarray, hex_colour: str, tolerance: float = 0.06) -> 
     return int(np.sum(distance < tolerance)) > 200
 
 
+@pytest.mark.parametrize(("value", "shown"), [
+    (12_345.0, "12.35 kHz"), (999.4, "999.4 Hz"), (999.96, "1.000 kHz"),
+    (-0.00099996, "-1.000 mHz"), (0.5, "500.0 mHz"), (0.0, "0 Hz"), (float("nan"), "–"),
+])
+def test_engineering_shows_four_significant_digits(value, shown):
+    # SI prefixes (BIPM SI Brochure, 9th ed., table 7 (mem)); 4 significant digits
+    # counted after rounding, so a value that rounds up to the next prefix keeps 4
+    from loopwright.report.formatting import engineering
+
+    assert engineering(value, "Hz") == shown
+
+
 def test_palette_traces_differ_in_lightness_and_avoid_channel_colours():
     # CIE L* (CIE 15:2004 from IEC 61966-2-1 sRGB): black is 0, white 100.
     assert palette.lightness("#000000") == pytest.approx(0.0, abs=1e-9)

@@ -33,7 +33,9 @@ def engineering(value: float | None, unit: str, digits: int = 4) -> str:
             scale, prefix = candidate_scale, candidate_prefix
             break
     scaled = value / scale
-    decimals = max(0, digits - 1 - math.floor(math.log10(abs(scaled))))
+    # the exponent after rounding: 0.99996 k shows as 1.000 k, not 1.0000 k
+    rounded = float(f"{scaled:.{digits - 1}e}")
+    decimals = max(0, digits - 1 - math.floor(math.log10(abs(rounded))))
     return f"{scaled:.{decimals}f} {prefix}{unit}".strip()
 
 
