@@ -150,7 +150,8 @@ def find_drivers(extra_dirs: Iterable[str | Path] = (), role: str | None = None
     seen: dict[str, LoadedDriver] = {}
     for folder in driver_dirs(extra_dirs):
         if not folder.is_dir():
-            raise InputError(f"driver folder {str(folder)!r} does not exist")
+            what = "is a file, not a folder" if folder.exists() else "does not exist"
+            raise InputError(f"driver folder {str(folder)!r} {what}")
         here: dict[str, Path] = {}
         for path in sorted(folder.glob("*.yaml")):
             loaded = load_driver(path)
