@@ -410,3 +410,17 @@ def test_unusable_calibration_is_our_input_error(tmp_path, row, message):
     path.write_text(header + (row + "\n" if row else ""))
     with pytest.raises(InputError, match=message):
         read_calibration(path)
+
+
+def test_points_with_a_non_numeric_cell_name_file_line_and_column(tmp_path):
+    """A hand-edited points.csv: our InputError with file:line and the column."""
+    from loopwright.errors import InputError
+    from loopwright.store.load import read_points
+    from loopwright.store.writer import POINT_COLUMNS
+
+    path = tmp_path / "points.csv"
+    row = ["0", "2026-01-01T00:00:00Z", "x"] + ["1"] * (len(POINT_COLUMNS) - 4) + [""]
+    path.write_text(",".join(POINT_COLUMNS) + "\n" + ",".join(row) + "\n")
+    with pytest.raises(InputError) as info:
+        read_points(path)
+    assert str(info.value).startswith(f"{path}:2: step:")

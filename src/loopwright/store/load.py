@@ -97,8 +97,18 @@ def read_points(path: str | Path) -> pd.DataFrame:
         raise InputError(f"cannot read points: {exc}", path=target) from exc
     if list(frame.columns) != list(POINT_COLUMNS):
         raise InputError("unexpected columns in points.csv", path=target, line=1)
-    for column in ("index", "step", "refined"):
-        frame[column] = frame[column].astype("int64")
+    for column in POINT_COLUMNS:
+        if column in ("timestamp_utc", "flags"):
+            continue
+        numbers = pd.to_numeric(frame[column], errors="coerce")
+        bad = numbers.isna() & frame[column].notna()
+        if column in ("index", "step", "refined"):
+            bad |= numbers.isna() | (numbers != numbers.round())
+        if bad.any():
+            row = int(bad.to_numpy().nonzero()[0][0])
+            raise InputError(f"{frame[column].iloc[row]!r} is not a number here",
+                             path=target, line=row + 2, field=column)
+        frame[column] = numbers.astype(_dtype(column))
     return frame
 
 
