@@ -27,9 +27,10 @@ from typing import Any
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import given
 from hypothesis import strategies as st
 
+from fuzz_settings import fuzz_settings
 from loopwright.analysis import FrequencyResponse, analyze_loop
 from loopwright.cli import main
 from loopwright.commands.ratio import load_capture
@@ -43,12 +44,8 @@ CAPTURE_HZ = 12_500.0
 #: Samples kept of the example capture: 5 cycles at 2 MS/s.
 CAPTURE_ROWS = 800
 
-FAST = settings(max_examples=60, deadline=None, derandomize=True,
-                suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
-                                       HealthCheck.function_scoped_fixture])
-HEAVY = settings(max_examples=120, deadline=None, derandomize=True,
-                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
-                                        HealthCheck.function_scoped_fixture])
+FAST = fuzz_settings(60)
+HEAVY = fuzz_settings(120)
 
 CASES: Counter[str] = Counter()
 

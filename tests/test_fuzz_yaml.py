@@ -33,9 +33,10 @@ from unittest import mock
 
 import pytest
 import yaml
-from hypothesis import HealthCheck, given, settings
+from hypothesis import given
 from hypothesis import strategies as st
 
+from fuzz_settings import fuzz_settings
 from loopwright.cli import main
 from loopwright.errors import InputError, LoopwrightError
 from loopwright.instruments.driver import load_driver
@@ -56,12 +57,8 @@ LOADERS: dict[str, Callable[[Path], Any]] = {
 KINDS = tuple(EXAMPLES)
 
 #: Examples per test (CI runs them all; the slow-marked ones too).
-FAST = settings(max_examples=40, deadline=None, derandomize=True,
-                suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
-                                       HealthCheck.function_scoped_fixture])
-HEAVY = settings(max_examples=40, deadline=None, derandomize=True,
-                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
-                                       HealthCheck.function_scoped_fixture])
+FAST = fuzz_settings(40)
+HEAVY = fuzz_settings(40)
 
 #: Cases run per test, printed at the end of the module.
 CASES: Counter[str] = Counter()
