@@ -16,7 +16,9 @@ two orders of magnitude when BLAS threads compete for busy cores.
 from __future__ import annotations
 
 import argparse
+import sys
 import time
+from pathlib import Path
 
 import numpy as np
 from scipy.interpolate import PchipInterpolator
@@ -26,23 +28,9 @@ from loopwright.analysis import FrequencyResponse, analyze_loop
 
 F_SCALE_HZ = 1e4
 
-
-def random_loop(rng: np.random.Generator, control):
-    """Same recipe as tests/test_analysis_margins.py."""
-    num, den, order = np.array([1.0]), np.array([1.0]), 0
-    if rng.random() < 0.6:
-        den, order = np.polymul(den, [1.0, 0.0]), 1
-    for _ in range(rng.integers(0, 3)):
-        wn = 10 ** rng.uniform(-0.5, 1.0)
-        zeta = 10 ** rng.uniform(np.log10(0.03), np.log10(0.7))
-        den, order = np.polymul(den, [1.0, 2 * zeta * wn, wn * wn]), order + 2
-    target = rng.integers(max(order, 1), 7)
-    while order < target:
-        den, order = np.polymul(den, [1 / 10 ** rng.uniform(-1, 1.5), 1.0]), order + 1
-    for _ in range(min(rng.integers(0, max(1, order - 1)), 2)):
-        num = np.polymul(num, [1 / 10 ** rng.uniform(-1, 1), 1.0])
-    system = control.tf(num, den)
-    return system * (10 ** rng.uniform(-0.5, 0.5) / abs(system(1j)))
+# the same seeded loops as tests/test_analysis_margins.py
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from random_loops import random_loop  # noqa: E402
 
 
 def simple_figures(f: np.ndarray, h: np.ndarray, kind: str) -> tuple[list, list]:
@@ -81,7 +69,7 @@ def accuracy(loops: int) -> None:
     miscounted = dict.fromkeys(worst, 0)
     counted = 0
     while counted < loops:
-        system = random_loop(rng, control)
+        system = random_loop(rng)
         gm, pm, _sm, w180, wc, _ws = control.stability_margins(system, returnall=True)
         wc, w180 = np.atleast_1d(wc), np.atleast_1d(w180)
         pm, gm = np.atleast_1d(pm), np.atleast_1d(gm)

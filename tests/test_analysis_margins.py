@@ -23,6 +23,7 @@ from hypothesis import strategies as st
 
 from loopwright.analysis import FrequencyResponse, analyze_loop
 from loopwright.cli import main
+from random_loops import random_loop
 
 F_SCALE_HZ = 1e4  # w = 1 rad/s <-> 10 kHz
 # Requirement tolerances for 8 points per decade of exact data.
@@ -168,27 +169,6 @@ def test_sign_flip_analyses_minus_h(tmp_path, capsys) -> None:
 
 
 # -- seeded random loops --------------------------------------------------------------
-def _random_loop(rng: np.random.Generator):
-    """A stable-ish loop of order up to 6: optional integrator, up to two lightly damped
-    pairs (zeta 0.03..0.7), real poles, up to two real zeros; gain near crossover."""
-    num, den, order = np.array([1.0]), np.array([1.0]), 0
-    if rng.random() < 0.6:
-        den, order = np.polymul(den, [1.0, 0.0]), 1
-    for _ in range(rng.integers(0, 3)):
-        wn = 10 ** rng.uniform(-0.5, 1.0)
-        zeta = 10 ** rng.uniform(np.log10(0.03), np.log10(0.7))
-        den, order = np.polymul(den, [1.0, 2 * zeta * wn, wn * wn]), order + 2
-    target = rng.integers(max(order, 1), 7)
-    while order < target:
-        pole = 10 ** rng.uniform(-1, 1.5)
-        den, order = np.polymul(den, [1 / pole, 1.0]), order + 1
-    for _ in range(min(rng.integers(0, max(1, order - 1)), 2)):
-        zero = 10 ** rng.uniform(-1, 1)
-        num = np.polymul(num, [1 / zero, 1.0])
-    system = control.tf(num, den)
-    return system * (10 ** rng.uniform(-0.5, 0.5) / abs(system(1j)))
-
-
 def _near_edge(system, frequency_hz: np.ndarray) -> bool:
     """True when a crossing lies within 5 % of either end (the count would be moot)."""
     _gm, _pm, _sm, w_180, w_c, _ws = control.stability_margins(system, returnall=True)
@@ -202,7 +182,7 @@ def _random_loops(count: int, seed: int = 20261201) -> list:
     f = _sweep(-3, 3)
     loops = []
     while len(loops) < count:
-        system = _random_loop(rng)
+        system = random_loop(rng)
         if not _near_edge(system, f):
             loops.append(system)
     return loops
